@@ -174,7 +174,11 @@ pub fn decode_zones(specs: Vec<ZoneSpec>, raster: &Raster, limits: &Limits) -> R
     if specs.len() > limits.max_zones {
         return Err(DecodeError::limit(
             "/zones",
-            format!("{} zones exceed this service's limit of {}: send them in several requests", specs.len(), limits.max_zones),
+            format!(
+                "{} zones exceed this service's limit of {}: send them in several requests",
+                specs.len(),
+                limits.max_zones
+            ),
         ));
     }
     let mut budget = limits.max_zone_cells;
@@ -189,7 +193,10 @@ pub fn decode_zones(specs: Vec<ZoneSpec>, raster: &Raster, limits: &Limits) -> R
                 ))
             }
             (None, None) => {
-                return Err(DecodeError::at(base, format!("zone `{}` gives neither `cells` nor `rect`: give one", spec.id)))
+                return Err(DecodeError::at(
+                    base,
+                    format!("zone `{}` gives neither `cells` nor `rect`: give one", spec.id),
+                ))
             }
             (Some(c), None) => c,
             (None, Some(r)) => rect_cells(&spec.id, r, raster, &base)?,
@@ -225,7 +232,10 @@ pub fn decode_zones(specs: Vec<ZoneSpec>, raster: &Raster, limits: &Limits) -> R
 fn rect_cells(id: &str, r: RectSpec, raster: &Raster, base: &str) -> Result<Vec<u32>, DecodeError> {
     let (w, h) = (raster.width(), raster.height());
     if r.rows == 0 || r.cols == 0 {
-        return Err(DecodeError::at(format!("{base}/rect"), format!("zone `{id}` has an empty rect ({}x{}): rows and cols must be at least 1", r.rows, r.cols)));
+        return Err(DecodeError::at(
+            format!("{base}/rect"),
+            format!("zone `{id}` has an empty rect ({}x{}): rows and cols must be at least 1", r.rows, r.cols),
+        ));
     }
     let fits = r.row as u64 + r.rows as u64 <= h as u64 && r.col as u64 + r.cols as u64 <= w as u64;
     if !fits {
@@ -332,7 +342,7 @@ pub struct ResultsDocument {
 
 impl From<ZoneSummary> for ZoneResult {
     fn from(z: ZoneSummary) -> Self {
-        let pmf = (!z.pmf.is_empty()).then(|| PmfOut { offset: z.offset, values: z.pmf });
+        let pmf = (!z.pmf.is_empty()).then_some(PmfOut { offset: z.offset, values: z.pmf });
         ZoneResult {
             id: z.id,
             cells: z.cells,

@@ -167,9 +167,7 @@ impl Zone {
                 return Err(EngineError::InvalidZone {
                     zone: id.clone(),
                     position: Some(pos),
-                    detail: format!(
-                        "zone `{id}` has cell {c}, outside the {w}x{h} raster (last index {last})"
-                    ),
+                    detail: format!("zone `{id}` has cell {c}, outside the {w}x{h} raster (last index {last})"),
                 });
             }
             if raster.values[c as usize].is_nan() {
@@ -192,6 +190,11 @@ impl Zone {
             });
         }
         Ok(Zone { id, cells: sorted })
+    }
+
+    /// An unnamed block of cells already known to be valid, distinct and sorted (internal use).
+    pub(crate) fn block(cells: Vec<u32>) -> Zone {
+        Zone { id: String::new(), cells }
     }
 
     pub fn id(&self) -> &str {
@@ -217,7 +220,10 @@ pub fn check_unique_ids(zones: &[Zone]) -> Result<(), EngineError> {
             return Err(EngineError::InvalidZone {
                 zone: z.id().to_string(),
                 position: None,
-                detail: format!("zone id `{}` is used twice (second time at zone {i}): give each zone its own id", z.id()),
+                detail: format!(
+                    "zone id `{}` is used twice (second time at zone {i}): give each zone its own id",
+                    z.id()
+                ),
             });
         }
     }

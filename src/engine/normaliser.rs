@@ -57,8 +57,6 @@ pub struct Normaliser {
     /// Certified bounds on the tilted P~(free total = target).
     pub(crate) z_lo: f64,
     pub(crate) z_hi: f64,
-    /// Roundings behind the computed P~(free total = target).
-    pub(crate) z_rounding: u64,
     pub check: TotalCheck,
     law_len: usize,
 }
@@ -111,7 +109,6 @@ impl Normaliser {
                 target,
                 z_lo: 1.0,
                 z_hi: 1.0,
-                z_rounding: 0,
                 check,
                 law_len: 1,
             });
@@ -132,16 +129,7 @@ impl Normaliser {
         let p_eq = log_eq.exp();
         let (p_at_most, p_at_least) = tails(&law, &tilt, target, free_mean, log_eq, p_eq);
         let check = total_check(total, prior_mean, prior_sd, z_score, p_at_most, p_at_least, log_eq);
-        Ok(Normaliser {
-            regime: Regime::Tilted(tilt),
-            total,
-            target,
-            z_lo,
-            z_hi,
-            z_rounding: law.rounding,
-            check,
-            law_len: law.len(),
-        })
+        Ok(Normaliser { regime: Regime::Tilted(tilt), total, target, z_lo, z_hi, check, law_len: law.len() })
     }
 
     /// Bytes held (for cache accounting).

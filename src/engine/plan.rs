@@ -87,9 +87,11 @@ fn hilbert(mut x: u32, mut y: u32) -> u64 {
     d
 }
 
-/// Plans the union tree for `zones` on `raster`. `zones` must be non-empty.
+/// Plans the union tree for `zones` on `raster` (an empty plan for no zones).
 pub fn plan(raster: &Raster, zones: &[Zone]) -> Plan {
-    assert!(!zones.is_empty(), "the caller checks for an empty zone list");
+    if zones.is_empty() {
+        return Plan { nodes: Vec::new(), root: 0, overlapping: false, covered: 0, estimated_cost: 0.0 };
+    }
     let (w, h) = (raster.width() as f64, raster.height() as f64);
     let scale = ((1u64 << HILBERT_ORDER) - 1) as f64 / w.max(h);
     let mut keyed: Vec<(u64, usize)> = zones
@@ -142,7 +144,14 @@ pub(crate) fn window(cells: u64, var_per_cell: f64) -> f64 {
     (2.0 * COST_WINDOW_SD * sd + 1.0).min(cells as f64 + 1.0)
 }
 
-fn build(order: &[usize], zones: &[Zone], parent: Option<usize>, depth: u32, var: f64, nodes: &mut Vec<PlanNode>) -> usize {
+fn build(
+    order: &[usize],
+    zones: &[Zone],
+    parent: Option<usize>,
+    depth: u32,
+    var: f64,
+    nodes: &mut Vec<PlanNode>,
+) -> usize {
     let id = nodes.len();
     let weight: u64 = order.iter().map(|&z| zones[z].len() as u64).sum();
     nodes.push(PlanNode { parent, children: None, zone: None, weight, depth, cost: 0.0 });

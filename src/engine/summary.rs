@@ -37,7 +37,12 @@ pub struct ZoneSummary {
 }
 
 /// Summarises a pmf over `offset ..` that sums to one.
-pub(crate) fn summarise(offset: u64, pmf: &[f64], level: f64, thresholds: &[u64]) -> (f64, f64, u64, u64, Interval, Vec<(u64, f64)>) {
+pub(crate) fn summarise(
+    offset: u64,
+    pmf: &[f64],
+    level: f64,
+    thresholds: &[u64],
+) -> (f64, f64, u64, u64, Interval, Vec<(u64, f64)>) {
     let mean_rel: f64 = pmf.iter().enumerate().map(|(i, &p)| i as f64 * p).sum();
     let var: f64 = pmf.iter().enumerate().map(|(i, &p)| (i as f64 - mean_rel).powi(2) * p).sum();
     let mut mode = 0;
@@ -66,11 +71,7 @@ pub(crate) fn summarise(offset: u64, pmf: &[f64], level: f64, thresholds: &[u64]
     let exceedance = thresholds
         .iter()
         .map(|&k| {
-            let p = if k <= offset {
-                suffix[0]
-            } else {
-                suffix.get((k - offset) as usize).copied().unwrap_or(0.0)
-            };
+            let p = if k <= offset { suffix[0] } else { suffix.get((k - offset) as usize).copied().unwrap_or(0.0) };
             (k, p.min(1.0))
         })
         .collect();

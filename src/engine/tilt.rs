@@ -105,7 +105,11 @@ mod tests {
         let prior: f64 = values.iter().sum();
         for target in [1u64, 20, 150, 400, 999] {
             let tilt = solve(&values, 1000, prior, target);
-            assert!((tilt.mean - target as f64).abs() <= 1e-3 * tilt.var.sqrt() + 1e-6, "target {target}: mean {}", tilt.mean);
+            assert!(
+                (tilt.mean - target as f64).abs() <= 1e-3 * tilt.var.sqrt() + 1e-6,
+                "target {target}: mean {}",
+                tilt.mean
+            );
         }
     }
 
