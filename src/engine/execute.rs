@@ -102,16 +102,28 @@ fn build_sets(plan: &Plan, raster: &Raster, zones: &[Zone]) -> Sets {
     if !plan.overlapping {
         let mut seen = vec![0u64; raster.len().div_ceil(64)];
         for (z, zone) in zones.iter().enumerate() {
-            let cells: Vec<u32> = zone.cells().iter().copied().filter(|&c| is_free(values[c as usize])).collect();
+            let cells: Vec<u32> = zone
+                .cells()
+                .iter()
+                .copied()
+                .filter(|&c| is_free(values[c as usize]))
+                .collect();
             for &c in zone.cells() {
                 seen[(c / 64) as usize] |= 1 << (c % 64);
             }
             assigned[leaf[z]] = cells;
         }
         let outside = (0..raster.len() as u32)
-            .filter(|&c| seen[(c / 64) as usize] & (1 << (c % 64)) == 0 && is_free(values[c as usize]))
+            .filter(|&c| {
+                seen[(c / 64) as usize] & (1 << (c % 64)) == 0 && is_free(values[c as usize])
+            })
             .collect();
-        return Sets { assigned, shared, fringe, outside };
+        return Sets {
+            assigned,
+            shared,
+            fringe,
+            outside,
+        };
     }
     // Overlapping zones: assign each cell to the LCA of its zones.
     let mut owner = vec![NONE; raster.len()];
@@ -119,7 +131,11 @@ fn build_sets(plan: &Plan, raster: &Raster, zones: &[Zone]) -> Sets {
     for (z, zone) in zones.iter().enumerate() {
         for &c in zone.cells() {
             let o = &mut owner[c as usize];
-            *o = if *o == NONE { leaf[z] as u32 } else { lca(plan, *o as usize, leaf[z]) as u32 };
+            *o = if *o == NONE {
+                leaf[z] as u32
+            } else {
+                lca(plan, *o as usize, leaf[z]) as u32
+            };
             count[c as usize] += 1;
         }
     }
@@ -164,13 +180,17 @@ fn build_sets(plan: &Plan, raster: &Raster, zones: &[Zone]) -> Sets {
             let mut v = l as usize;
             while v != w {
                 steiner.push(v);
-                v = plan.nodes[v].parent.expect("a leaf below its LCA has a parent");
+                v = plan.nodes[v]
+                    .parent
+                    .expect("a leaf below its LCA has a parent");
             }
         }
         steiner.sort_unstable();
         steiner.dedup();
         for &v in &steiner {
-            let p = plan.nodes[v].parent.expect("steiner nodes lie below the LCA");
+            let p = plan.nodes[v]
+                .parent
+                .expect("steiner nodes lie below the LCA");
             if p == w {
                 continue;
             }
@@ -181,7 +201,12 @@ fn build_sets(plan: &Plan, raster: &Raster, zones: &[Zone]) -> Sets {
             }
         }
     }
-    Sets { assigned, shared, fringe, outside }
+    Sets {
+        assigned,
+        shared,
+        fringe,
+        outside,
+    }
 }
 
 /// Bottom-up results of a subtree.
@@ -245,8 +270,16 @@ impl Pass<'_> {
                 } else {
                     self.trimmed(convolve(&own_cells, &self.cells.law_of(shared)))
                 };
-                let range = (self.target.saturating_sub(own.hi()), self.target.saturating_sub(own.lo));
-                Built::Leaf { zone, private: own_cells, own, range }
+                let range = (
+                    self.target.saturating_sub(own.hi()),
+                    self.target.saturating_sub(own.lo),
+                );
+                Built::Leaf {
+                    zone,
+                    private: own_cells,
+                    own,
+                    range,
+                }
             }
             Some((l, r)) => {
                 let (bl, br) = if n.weight >= 1 << 14 {
@@ -261,15 +294,24 @@ impl Pass<'_> {
                 }
                 let d_of = |child: usize, sib: &Built| -> Option<Law> {
                     let f = &self.sets.fringe[child];
-                    (!f.is_empty()).then(|| self.trimmed(convolve(sib.private(), &self.cells.law_of(f))))
+                    (!f.is_empty())
+                        .then(|| self.trimmed(convolve(sib.private(), &self.cells.law_of(f))))
                 };
                 let d = [d_of(l, &br), d_of(r, &bl)];
                 let dl = d[0].as_ref().unwrap_or(br.private());
                 let dr = d[1].as_ref().unwrap_or(bl.private());
                 let (rl, rr) = (bl.range(), br.range());
-                let lo = rl.0.saturating_sub(dl.hi()).min(rr.0.saturating_sub(dr.hi()));
+                let lo =
+                    rl.0.saturating_sub(dl.hi())
+                        .min(rr.0.saturating_sub(dr.hi()));
                 let hi = rl.1.saturating_sub(dl.lo).max(rr.1.saturating_sub(dr.lo));
-                Built::Inner { node, private, d, range: (lo, hi), kids: Box::new([bl, br]) }
+                Built::Inner {
+                    node,
+                    private,
+                    d,
+                    range: (lo, hi),
+                    kids: Box::new([bl, br]),
+                }
             }
         };
         self.control.advance((n.cost / 2.0) as u64);
@@ -277,7 +319,12 @@ impl Pass<'_> {
     }
 
     /// Walks down with the outside law of `built`'s node, calling `finish` at each leaf.
-    fn down<T: Send, F>(&self, built: Built, outside: Option<Law>, finish: &F) -> Result<Vec<T>, EngineError>
+    fn down<T: Send, F>(
+        &self,
+        built: Built,
+        outside: Option<Law>,
+        finish: &F,
+    ) -> Result<Vec<T>, EngineError>
     where
         F: Fn(usize, &Law, Option<&Law>) -> T + Sync,
     {
@@ -296,7 +343,8 @@ impl Pass<'_> {
                 let ol = child_outside(&bl, dl.as_ref(), &br);
                 let or = child_outside(&br, dr.as_ref(), &bl);
                 drop(outside);
-                self.control.advance((self.plan.nodes[node].cost / 2.0) as u64);
+                self.control
+                    .advance((self.plan.nodes[node].cost / 2.0) as u64);
                 let weight = self.plan.nodes[node].weight;
                 let (a, b) = if weight >= 1 << 14 {
                     rayon::join(|| self.down(bl, ol, finish), || self.down(br, or, finish))
@@ -338,7 +386,10 @@ fn certify(normaliser: &Normaliser, s: f64, k: u64, len: usize, z_mid: f64) -> (
     let truncation = 2.0 * gap / normaliser.z_lo;
     let rounding = gamma(2 * k + len as u64 + 2);
     let measured = 2.0 * (z_mid - s).max(0.0) / z_mid;
-    ((truncation + rounding) * (1.0 + 8.0 * UNIT_ROUNDOFF), measured)
+    (
+        (truncation + rounding) * (1.0 + 8.0 * UNIT_ROUNDOFF),
+        measured,
+    )
 }
 
 fn budget(tolerance: f64, trims: u64) -> f64 {
@@ -366,7 +417,12 @@ pub fn execute(
         return Ok(Vec::new());
     }
     let values = raster.values();
-    let ones = |z: &Zone| z.cells().iter().filter(|&&c| values[c as usize] >= 1.0).count() as u64;
+    let ones = |z: &Zone| {
+        z.cells()
+            .iter()
+            .filter(|&&c| values[c as usize] >= 1.0)
+            .count() as u64
+    };
     let tilt = match normaliser.regime {
         Regime::Tilted(t) => t,
         Regime::AllEmpty | Regime::AllFull => {
@@ -375,7 +431,10 @@ pub fn execute(
                 .iter()
                 .map(|z| {
                     let k = if full {
-                        z.cells().iter().filter(|&&c| values[c as usize] > 0.0).count() as u64
+                        z.cells()
+                            .iter()
+                            .filter(|&&c| values[c as usize] > 0.0)
+                            .count() as u64
                     } else {
                         ones(z)
                     };
@@ -392,12 +451,21 @@ pub fn execute(
     let mut attempt = 0;
     loop {
         attempt += 1;
-        let results = run_tree(plan, &sets, values, tilt, normaliser.target, eps, control, &|zone, own, outside| {
-            let (lo, g, k) = numerators(own, outside, normaliser.target);
-            let s: f64 = g.iter().sum();
-            let (bound, measured) = certify(normaliser, s, k, g.len(), z_mid);
-            (zone, lo, g, s, bound, measured)
-        })?;
+        let results = run_tree(
+            plan,
+            &sets,
+            values,
+            tilt,
+            normaliser.target,
+            eps,
+            control,
+            &|zone, own, outside| {
+                let (lo, g, k) = numerators(own, outside, normaliser.target);
+                let s: f64 = g.iter().sum();
+                let (bound, measured) = certify(normaliser, s, k, g.len(), z_mid);
+                (zone, lo, g, s, bound, measured)
+            },
+        )?;
         let worst = results.iter().map(|r| r.5).fold(0.0, f64::max);
         if worst > settings.tolerance && attempt < MAX_ATTEMPTS {
             eps *= RETRY_FACTOR;
@@ -409,13 +477,19 @@ pub fn execute(
             .map(|(zone, lo, g, s, bound, _)| {
                 let z = &zones[zone];
                 let (offset, pmf) = normalised(lo, g, s);
-                (zone, summary_of(raster, z, offset + ones(z), pmf, settings, bound.min(2.0)))
+                (
+                    zone,
+                    summary_of(raster, z, offset + ones(z), pmf, settings, bound.min(2.0)),
+                )
             })
             .collect();
         for (zone, s) in summaries {
             out[zone] = Some(s);
         }
-        return Ok(out.into_iter().map(|s| s.expect("every zone has a leaf")).collect());
+        return Ok(out
+            .into_iter()
+            .map(|s| s.expect("every zone has a leaf"))
+            .collect());
     }
 }
 
@@ -426,7 +500,10 @@ fn normalised(lo: u64, g: Vec<f64>, s: f64) -> (u64, Vec<f64>) {
     }
     let first = g.iter().position(|&x| x > 0.0).unwrap_or(0);
     let last = g.iter().rposition(|&x| x > 0.0).unwrap_or(0);
-    (lo + first as u64, g[first..=last].iter().map(|&x| x / s).collect())
+    (
+        lo + first as u64,
+        g[first..=last].iter().map(|&x| x / s).collect(),
+    )
 }
 
 #[allow(clippy::too_many_arguments)]
@@ -443,7 +520,17 @@ fn run_tree<T: Send, F>(
 where
     F: Fn(usize, &Law, Option<&Law>) -> T + Sync,
 {
-    let pass = Pass { plan, sets, cells: Cells { values, t: tilt.t, eps }, target, control };
+    let pass = Pass {
+        plan,
+        sets,
+        cells: Cells {
+            values,
+            t: tilt.t,
+            eps,
+        },
+        target,
+        control,
+    };
     let (built, outside) = rayon::join(|| pass.up(plan.root), || pass.cells.law_of(&sets.outside));
     let built = built?;
     let (lo, hi) = built.range();
@@ -459,7 +546,8 @@ pub(crate) fn summary_of(
     settings: &Settings,
     bound: f64,
 ) -> ZoneSummary {
-    let (mean, sd, mode, median, interval, exceedance) = summarise(offset, &pmf, settings.level, &settings.thresholds);
+    let (mean, sd, mode, median, interval, exceedance) =
+        summarise(offset, &pmf, settings.level, &settings.thresholds);
     let (mut pm, mut pv) = (0.0, 0.0);
     for &c in z.cells() {
         let p = raster.values()[c as usize];
@@ -501,7 +589,11 @@ pub fn cell_posterior(
         Some(c) => {
             for (i, &cell) in c.iter().enumerate() {
                 if cell as usize >= values.len() || values[cell as usize].is_nan() {
-                    let why = if (cell as usize) < values.len() { "is nodata" } else { "is outside the raster" };
+                    let why = if (cell as usize) < values.len() {
+                        "is nodata"
+                    } else {
+                        "is outside the raster"
+                    };
                     return Err(EngineError::InvalidZone {
                         zone: "cells".into(),
                         position: Some(i),
@@ -516,30 +608,50 @@ pub fn cell_posterior(
             }
             c.to_vec()
         }
-        None => (0..values.len() as u32).filter(|&c| !values[c as usize].is_nan()).collect(),
+        None => (0..values.len() as u32)
+            .filter(|&c| !values[c as usize].is_nan())
+            .collect(),
     };
     if list.is_empty() {
-        return Err(EngineError::NothingToDo("the cell list is empty: give at least one cell".into()));
+        return Err(EngineError::NothingToDo(
+            "the cell list is empty: give at least one cell".into(),
+        ));
     }
     let tilt = match normaliser.regime {
         Regime::Tilted(t) => t,
         Regime::AllEmpty | Regime::AllFull => {
             let full = normaliser.regime == Regime::AllFull;
-            let post = |p: f64| if p >= 1.0 || (full && p > 0.0) { 1.0 } else { 0.0 };
+            let post = |p: f64| {
+                if p >= 1.0 || (full && p > 0.0) {
+                    1.0
+                } else {
+                    0.0
+                }
+            };
             return Ok(CellPosterior {
-                cells: list.iter().map(|&c| (c, values[c as usize], post(values[c as usize]))).collect(),
+                cells: list
+                    .iter()
+                    .map(|&c| (c, values[c as usize], post(values[c as usize])))
+                    .collect(),
                 error_bound: 0.0,
             });
         }
     };
     // Distinct free cells in raster order, cut into blocks.
-    let mut free: Vec<u32> = list.iter().copied().filter(|&c| is_free(values[c as usize])).collect();
+    let mut free: Vec<u32> = list
+        .iter()
+        .copied()
+        .filter(|&c| is_free(values[c as usize]))
+        .collect();
     free.sort_unstable();
     free.dedup();
     let mut posterior = std::collections::HashMap::with_capacity(free.len());
     let mut worst = 0.0f64;
     if !free.is_empty() {
-        let blocks: Vec<Zone> = free.chunks(CELL_BLOCK).map(|c| Zone::block(c.to_vec())).collect();
+        let blocks: Vec<Zone> = free
+            .chunks(CELL_BLOCK)
+            .map(|c| Zone::block(c.to_vec()))
+            .collect();
         let plan = plan(raster, &blocks);
         control.plan_work(plan.estimated_cost as u64);
         let sets = build_sets(&plan, raster, &blocks);
@@ -547,9 +659,26 @@ pub fn cell_posterior(
         let eps = budget(settings.tolerance, trims);
         let target = normaliser.target;
         let z_mid = 0.5 * (normaliser.z_lo + normaliser.z_hi);
-        let results = run_tree(&plan, &sets, values, tilt, target, eps, control, &|zone, _own, outside| {
-            leave_one_out(blocks[zone].cells(), values, tilt.t, outside, target, normaliser, z_mid)
-        })?;
+        let results = run_tree(
+            &plan,
+            &sets,
+            values,
+            tilt,
+            target,
+            eps,
+            control,
+            &|zone, _own, outside| {
+                leave_one_out(
+                    blocks[zone].cells(),
+                    values,
+                    tilt.t,
+                    outside,
+                    target,
+                    normaliser,
+                    z_mid,
+                )
+            },
+        )?;
         for block in results {
             for (c, p, bound) in block {
                 worst = worst.max(bound);
@@ -565,7 +694,10 @@ pub fn cell_posterior(
             (c, p, post)
         })
         .collect();
-    Ok(CellPosterior { cells, error_bound: worst })
+    Ok(CellPosterior {
+        cells,
+        error_bound: worst,
+    })
 }
 
 /// Posterior of each cell of a block from the block's outside law: (cell, posterior, bound).
@@ -578,7 +710,10 @@ fn leave_one_out(
     normaliser: &Normaliser,
     z_mid: f64,
 ) -> Vec<(u32, f64, f64)> {
-    let pairs: Vec<(f64, f64)> = block.iter().map(|&c| tilted(values[c as usize], t)).collect();
+    let pairs: Vec<(f64, f64)> = block
+        .iter()
+        .map(|&c| tilted(values[c as usize], t))
+        .collect();
     let Some(o) = outside else {
         return block.iter().map(|&c| (c, 0.5, 2.0)).collect();
     };
@@ -596,7 +731,15 @@ fn leave_one_out(
     for (i, &c) in block.iter().enumerate() {
         let suf = &suffix[i];
         let at = |j: u64| -> f64 {
-            (0..suf.len() as u64).map(|k| if j >= k { f.at(j - k) * suf.values[k as usize] } else { 0.0 }).sum()
+            (0..suf.len() as u64)
+                .map(|k| {
+                    if j >= k {
+                        f.at(j - k) * suf.values[k as usize]
+                    } else {
+                        0.0
+                    }
+                })
+                .sum()
         };
         let (q, r) = pairs[i];
         let g1 = if target >= 1 { q * at(target - 1) } else { 0.0 };
@@ -612,7 +755,12 @@ fn leave_one_out(
             let below = if j > 0 { f.values[j - 1] } else { 0.0 };
             next[j] = f.values[j] * r + below * q;
         }
-        f = Law { lo, values: next, dropped: f.dropped, rounding: f.rounding + super::law::ROUNDINGS_PER_CELL };
+        f = Law {
+            lo,
+            values: next,
+            dropped: f.dropped,
+            rounding: f.rounding + super::law::ROUNDINGS_PER_CELL,
+        };
     }
     out
 }
@@ -643,7 +791,9 @@ mod tests {
     }
 
     fn random_zones(rng: &mut ChaCha8Rng, r: &Raster, n: usize, overlap: bool) -> Vec<Zone> {
-        let valid: Vec<u32> = (0..r.len() as u32).filter(|&c| r.get(crate::engine::CellIndex(c)).is_some()).collect();
+        let valid: Vec<u32> = (0..r.len() as u32)
+            .filter(|&c| r.get(crate::engine::CellIndex(c)).is_some())
+            .collect();
         if !overlap {
             // A partition of a random subset of the valid cells into n zones.
             let mut zones: Vec<Vec<u32>> = vec![Vec::new(); n];
@@ -677,7 +827,10 @@ mod tests {
     /// The tree executor against the naive one-cell-at-a-time reference.
     fn check(r: &Raster, zones: &[Zone], total: u64, tolerance: f64) {
         let control = Control::new();
-        let settings = Settings { tolerance, ..Settings::default() };
+        let settings = Settings {
+            tolerance,
+            ..Settings::default()
+        };
         let norm = Normaliser::new(r, total, &control).unwrap();
         let p = plan(r, zones);
         let got = execute(&p, r, zones, &norm, &settings, &control).unwrap();
@@ -687,26 +840,51 @@ mod tests {
             let mut l1 = 0.0;
             for (k, &w) in want.iter().enumerate() {
                 let k = k as u64;
-                let g = if k >= s.offset { s.pmf.get((k - s.offset) as usize).copied().unwrap_or(0.0) } else { 0.0 };
+                let g = if k >= s.offset {
+                    s.pmf.get((k - s.offset) as usize).copied().unwrap_or(0.0)
+                } else {
+                    0.0
+                };
                 l1 += (g - w).abs();
                 if tolerance <= 1e-13 {
                     assert!((g - w).abs() <= 1e-13, "zone {} k {k}: {g} vs {w}", s.id);
                     if w >= 1e-10 {
-                        assert!((g - w).abs() <= 1e-9 * w, "zone {} k {k}: {g} vs {w} relative", s.id);
+                        assert!(
+                            (g - w).abs() <= 1e-9 * w,
+                            "zone {} k {k}: {g} vs {w} relative",
+                            s.id
+                        );
                     }
                 }
             }
-            assert!(l1 <= s.error_bound, "zone {}: L1 {l1:e} above bound {:e}", s.id, s.error_bound);
+            assert!(
+                l1 <= s.error_bound,
+                "zone {}: L1 {l1:e} above bound {:e}",
+                s.id,
+                s.error_bound
+            );
             // The bound is the tolerance plus a worst-case rounding term of about 3e-15 per cell.
             let rounding = 1e-14 * r.stats().valid as f64;
-            assert!(s.error_bound <= tolerance + rounding, "zone {}: bound {:e}", s.id, s.error_bound);
+            assert!(
+                s.error_bound <= tolerance + rounding,
+                "zone {}: bound {:e}",
+                s.id,
+                s.error_bound
+            );
         }
     }
 
     #[test]
     fn tree_matches_reference_on_partitions() {
         let mut rng = ChaCha8Rng::seed_from_u64(7);
-        for (w, h, n) in [(1, 1, 1), (2, 1, 1), (3, 5, 2), (13, 11, 7), (40, 30, 23), (60, 50, 97)] {
+        for (w, h, n) in [
+            (1, 1, 1),
+            (2, 1, 1),
+            (3, 5, 2),
+            (13, 11, 7),
+            (40, 30, 23),
+            (60, 50, 97),
+        ] {
             for special in [false, true] {
                 let r = random_raster(&mut rng, w, h, special);
                 let zones = random_zones(&mut rng, &r, n, false);
@@ -719,7 +897,8 @@ mod tests {
                 let lo = st.certain;
                 let hi = st.certain + st.free;
                 for shift in [-3.0, 0.0, 1.5, 8.0] {
-                    let total = ((mean + shift * sd).round() as i64).clamp(lo as i64, hi as i64) as u64;
+                    let total =
+                        ((mean + shift * sd).round() as i64).clamp(lo as i64, hi as i64) as u64;
                     check(&r, &zones, total, 1e-13);
                 }
                 check(&r, &zones, lo, 1e-13);
@@ -757,7 +936,11 @@ mod tests {
         for &(c, p, q) in &post.cells {
             // reference: engine::reference::conditional_pmf on the singleton zone
             let want = conditional_pmf(&r, &[c], total).unwrap();
-            assert!((q - want[1]).abs() <= 1e-13, "cell {c} (p {p}): {q} vs {}", want[1]);
+            assert!(
+                (q - want[1]).abs() <= 1e-13,
+                "cell {c} (p {p}): {q} vs {}",
+                want[1]
+            );
             sum += q;
         }
         // reference: closed form, the posterior means of a partition sum to the observed total
