@@ -340,7 +340,7 @@ fn twenty_cells_prime_width() {
 fn total_check_is_exact_on_the_slope() {
     let raster = slope();
     let cells = valid_cells(&raster);
-    let exact = Enumerated::new(&raster, &[cells.clone()]);
+    let exact = Enumerated::new(&raster, std::slice::from_ref(&cells));
     let stats = *raster.stats();
     // Prior law of the total: weights summed over every zone count, scaled by the same 2^(L n).
     let by_total: Vec<BigUint> = exact

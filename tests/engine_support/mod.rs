@@ -141,18 +141,44 @@ pub fn l1(a: &[f64], b: &[f64]) -> f64 {
     a.iter().zip(b).map(|(x, y)| (x - y).abs()).sum()
 }
 
-/// A seeded random raster: p uniform in [lo, hi], with the given shares of p = 0, p = 1 and
+/// Shares of special cells in a random raster.
+#[derive(Clone, Copy, Debug)]
+pub struct Special {
+    pub zeros: f64,
+    pub ones: f64,
+    pub nodata: f64,
+}
+
+impl Special {
+    pub const NONE: Special = Special {
+        zeros: 0.0,
+        ones: 0.0,
+        nodata: 0.0,
+    };
+    /// The same share `s` of p = 0, p = 1 and nodata cells.
+    pub fn each(s: f64) -> Special {
+        Special {
+            zeros: s,
+            ones: s,
+            nodata: s,
+        }
+    }
+}
+
+/// A seeded random raster: p uniform in `range`, with `special` shares of p = 0, p = 1 and
 /// nodata cells.
 pub fn random_raster(
     rng: &mut ChaCha8Rng,
     w: u32,
     h: u32,
-    lo: f64,
-    hi: f64,
-    zeros: f64,
-    ones: f64,
-    nodata: f64,
+    range: (f64, f64),
+    special: Special,
 ) -> Raster {
+    let Special {
+        zeros,
+        ones,
+        nodata,
+    } = special;
     let values = (0..w * h)
         .map(|_| {
             let u: f64 = rng.gen();
@@ -163,7 +189,7 @@ pub fn random_raster(
             } else if u < nodata + zeros + ones {
                 Some(1.0)
             } else {
-                Some(rng.gen_range(lo..=hi))
+                Some(rng.gen_range(range.0..=range.1))
             }
         })
         .collect();
