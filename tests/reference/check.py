@@ -48,10 +48,16 @@ class Tally:
         self.failed = 0
         self.group = ""
         self.group_counts = {}
+        # Largest measured figures per group, printed in the summary.
+        self.figures = {}
 
     def start(self, group):
         self.group = group
         self.group_counts.setdefault(group, [0, 0])
+
+    def figure(self, name, value):
+        key = (self.group, name)
+        self.figures[key] = max(self.figures.get(key, 0.0), float(value))
 
     def check(self, ok, what):
         counts = self.group_counts[self.group]
@@ -67,6 +73,7 @@ class Tally:
     def prob(self, got, exact, what):
         """The contract for one reported probability against an exact (mpf) value."""
         diff = abs(mpf(got) - exact)
+        self.figure("max |reported - exact| of a probability", diff)
         ok = diff <= ABS_TOL
         if exact >= REL_FLOOR:
             ok = ok and diff <= REL_TOL * exact
@@ -117,6 +124,8 @@ def check_zone(t, zres, exact, what):
     # Mass outside the reported window is part of the L1 error the bound must cover.
     l1 = sum(abs(mpf(got[k]) - exact[k]) for k in range(size + 1))
     bound = zres["error_bound"]
+    t.figure("max exact L1 error of a pmf", l1)
+    t.figure("max error_bound", bound)
     t.check(l1 <= bound, f"{what}: exact L1 error {mp.nstr(l1, 3)} > error_bound {bound!r}")
     # mean = sum k P(k): the contract's 1e-9 relative on the large values, 1e-13 absolute on
     # the small ones (at most |S| (|S| + 1) / 2 of them, weighted by k), and |S| times the mass
@@ -190,6 +199,7 @@ def two_values(t, binary):
         worst = 0.0
         for k in range(max(0, m - (t_size - s)), min(s, m) + 1):
             worst = max(worst, abs(got[k] - float(nchypergeom_fisher.pmf(k, t_size, s, m, wf))))
+        t.figure("max |engine - scipy|", worst)
         t.check(worst <= SCIPY_TOL, f"{what}: max |engine - scipy| {worst:.3e} > {SCIPY_TOL:.0e}")
 
     t.start("scipy documentation example")
@@ -318,6 +328,9 @@ def main():
     print()
     for group, (ok, bad) in t.group_counts.items():
         print(f"  {group}: {ok} passed, {bad} failed")
+        for (g, name), value in sorted(t.figures.items()):
+            if g == group:
+                print(f"      {name}: {value:.3e}")
     print(f"  ({time.time() - start:.0f} s)")
     print(f"{t.passed} passed, {t.failed} failed")
     sys.exit(1 if t.failed else 0)
