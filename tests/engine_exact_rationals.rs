@@ -304,7 +304,8 @@ fn one_and_two_cells() {
 
 #[test]
 fn twenty_cells_prime_width() {
-    // 20 cells (a 1 x 20 strip is too flat; 4 x 5 is the same count), mixed small and large p.
+    // The most cells enumeration is kept to (2^20 configurations), on a raster of prime width,
+    // mixed small and large p.
     let p = [
         1.0 / 7.0,
         3.0 / 10.0,
