@@ -245,6 +245,9 @@ impl Built {
 struct Pass<'a> {
     plan: &'a Plan,
     zones: &'a [Zone],
+    /// Keep each leaf's whole range [target - cells, target] (the cell posterior's leave-one-out
+    /// reads all of it) instead of the range its trimmed law needs.
+    whole_leaves: bool,
     sets: &'a Sets,
     cells: Cells<'a>,
     target: u64,
@@ -288,10 +291,15 @@ impl Pass<'_> {
                 } else {
                     self.trimmed(convolve(&own_cells, &direct.law_of(shared), usize::MAX))
                 };
-                let range = (
-                    self.target.saturating_sub(own.hi()),
-                    self.target.saturating_sub(own.lo),
-                );
+                let range = if self.whole_leaves {
+                    let cells = self.assigned(node).len() as u64;
+                    (self.target.saturating_sub(cells), self.target)
+                } else {
+                    (
+                        self.target.saturating_sub(own.hi()),
+                        self.target.saturating_sub(own.lo),
+                    )
+                };
                 Built::Leaf {
                     zone,
                     private: own_cells,
@@ -516,7 +524,7 @@ pub(crate) fn execute_with(
         attempt += 1;
         let results = run_tree(
             plan,
-            zones,
+            (zones, false),
             &sets,
             values,
             tilt,
@@ -593,7 +601,7 @@ fn normalised(lo: u64, g: Vec<f64>, s: f64) -> (u64, Vec<f64>) {
 #[allow(clippy::too_many_arguments)]
 fn run_tree<T: Send, F>(
     plan: &Plan,
-    zones: &[Zone],
+    (zones, whole_leaves): (&[Zone], bool),
     sets: &Sets,
     values: &[f64],
     tilt: Tilt,
@@ -608,6 +616,7 @@ where
     let pass = Pass {
         plan,
         zones,
+        whole_leaves,
         sets,
         cells: Cells {
             values,
@@ -748,7 +757,7 @@ pub fn cell_posterior(
         let z_mid = 0.5 * (normaliser.z_lo + normaliser.z_hi);
         let results = run_tree(
             &plan,
-            &blocks,
+            (&blocks, true),
             &sets,
             values,
             tilt,
@@ -813,8 +822,14 @@ fn leave_one_out(
         next.add_cells([pairs[i + 1]]);
         suffix[i] = next;
     }
-    // f = outside law folded with cells 0..i (on the outside law's own range).
-    let mut f = o.clone();
+    // f = outside law folded with cells 0..i-1, held on the whole range the block can need,
+    // [target - b, target], zero where the outside law was not kept.
+    let lo = target.saturating_sub(b as u64);
+    let mut f = Law {
+        lo,
+        values: (lo..=target).map(|j| o.at(j)).collect(),
+        ..o.clone()
+    };
     let mut out = Vec::with_capacity(b);
     for (i, &c) in block.iter().enumerate() {
         let suf = &suffix[i];
