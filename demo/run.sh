@@ -71,12 +71,19 @@ zones = doc["zones"]
 thresholds = [e["k"] for e in zones[0]["exceedance"]] if zones else []
 level = zones[0]["interval"]["level"] if zones else 0.9
 head = ["zone", "cells", "prior mean", "posterior mean", f"{level:.0%} interval"] + [f"P(>={k})" for k in thresholds]
+def exc(p, bound):
+    # Below the certified error bound, an exceedance is only known to be at most p + bound.
+    if bound > 0 and p < bound:
+        return f"<={p + bound:.1e}"
+    return f"{p:.3f}" if p >= 0.0005 else f"{p:.1e}"
+
+
 rows = []
 for z in zones:
     iv = z["interval"]
     rows.append(
         [z["id"], str(z["cells"]), f"{z['prior']['mean']:.2f}", f"{z['mean']:.2f}", f"{iv['lower']}-{iv['upper']}"]
-        + [f"{e['p']:.3f}" if e["p"] >= 0.0005 else f"{e['p']:.1e}" for e in z["exceedance"]]
+        + [exc(e["p"], z["error_bound"]) for e in z["exceedance"]]
     )
 widths = [max(len(r[i]) for r in [head] + rows) for i in range(len(head))]
 line = lambda r: "  ".join(c.ljust(w) if i == 0 else c.rjust(w) for i, (c, w) in enumerate(zip(r, widths)))
