@@ -17,6 +17,7 @@ import shutil
 import subprocess
 import sys
 import tempfile
+import time
 import unittest
 from html.parser import HTMLParser
 
@@ -348,6 +349,131 @@ class PageRendered(unittest.TestCase):
         self.assertIn("computing: invalid inputs", html)
         self.assertIn("/zones/2/cells/3", html)
         self.assertIn("status 400", html)
+
+
+class _Browser:
+    """Headless Chromium driven over the DevTools protocol on a pipe (fds 3 and 4), stdlib only."""
+
+    def __init__(self, url):
+        r_in, w_in = os.pipe()    # we write, Chromium reads on fd 3
+        r_out, w_out = os.pipe()  # Chromium writes on fd 4, we read
+        self.profile = tempfile.mkdtemp()
+        self.proc = subprocess.Popen(
+            ["bash", "-c", f'exec "$0" "$@" 3<&{r_in} 4>&{w_out}', CHROMIUM, "--headless", "--no-sandbox",
+             "--disable-gpu", "--disable-background-networking", "--disable-component-update", "--disable-sync",
+             "--no-first-run", f"--user-data-dir={self.profile}", "--window-size=1280,900",
+             "--remote-debugging-pipe", "about:blank"],
+            pass_fds=(r_in, w_out), stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        os.close(r_in)
+        os.close(w_out)
+        self.out = os.fdopen(w_in, "wb", buffering=0)
+        self.inp = os.fdopen(r_out, "rb", buffering=0)
+        self.buf, self.next_id, self.session = b"", 0, None
+        target = self.call("Target.createTarget", {"url": url})["targetId"]
+        self.session = self.call("Target.attachToTarget", {"targetId": target, "flatten": True})["sessionId"]
+
+    def call(self, method, params=None):
+        self.next_id += 1
+        msg = {"id": self.next_id, "method": method, "params": params or {}}
+        if self.session:
+            msg["sessionId"] = self.session
+        self.out.write(json.dumps(msg).encode() + b"\0")
+        while True:
+            while b"\0" not in self.buf:
+                chunk = self.inp.read(1 << 16)
+                if not chunk:
+                    raise RuntimeError("chromium closed the DevTools pipe")
+                self.buf += chunk
+            raw, self.buf = self.buf.split(b"\0", 1)
+            reply = json.loads(raw)
+            if reply.get("id") == self.next_id:
+                if "error" in reply:
+                    raise RuntimeError(f"{method}: {reply['error']}")
+                return reply["result"]
+
+    def eval(self, expr):
+        return self.call("Runtime.evaluate", {"expression": expr, "returnByValue": True})["result"].get("value")
+
+    def wait_for(self, expr, timeout=30):
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            if self.eval(expr):
+                return
+            time.sleep(0.1)
+        raise AssertionError(f"timed out waiting for {expr}")
+
+    def click(self, x, y):
+        for kind in ("mousePressed", "mouseReleased"):
+            self.call("Input.dispatchMouseEvent", {"type": kind, "x": x, "y": y, "button": "left", "clickCount": 1})
+
+    def key(self, key, code):
+        for kind in ("keyDown", "keyUp"):
+            self.call("Input.dispatchKeyEvent", {"type": kind, "key": key, "code": code, "windowsVirtualKeyCode": {"ArrowDown": 40}.get(key, 0)})
+
+    def close(self):
+        try:
+            self.call("Browser.close")
+            self.proc.wait(10)
+        except Exception:
+            self.proc.kill()
+            self.proc.wait(10)
+        shutil.rmtree(self.profile, ignore_errors=True)
+
+
+@unittest.skipUnless(CHROMIUM, "chromium not installed (apt-get install -y chromium)")
+class PageInteractive(unittest.TestCase):
+    """Clicks the map and the table in headless Chromium and reads which zone the chart shows."""
+
+    @classmethod
+    def setUpClass(cls):
+        cls.server, url = stand_in.start(zonetally())
+        cls.browser = _Browser(url + "/demo")
+        cls.browser.wait_for(f"document.querySelectorAll('tr[data-index]').length === {len(load_valley()['zones'])}")
+
+    @classmethod
+    def tearDownClass(cls):
+        cls.browser.close()
+        cls.server.shutdown()
+        cls.server.server_close()
+
+    def shown(self):
+        return self.browser.eval("document.getElementById('chart-zone').textContent")
+
+    def selected_row(self):
+        return self.browser.eval("document.querySelector('tr.selected td').textContent")
+
+    def test_clicking_a_zone_on_the_map_selects_it(self):
+        doc = load_valley()
+        spec = next(z for z in doc["zones"] if z["id"] == "sawpit-gully")
+        cells = zone_cells(spec, 120)
+        cell = cells[len(cells) // 2]
+        self.browser.eval("document.getElementById('map').scrollIntoView()")
+        rect = self.browser.eval("(() => { const r = document.getElementById('map').getBoundingClientRect();"
+                                 " return [r.left, r.top, r.width]; })()")
+        size = rect[2] / 120
+        self.browser.click(rect[0] + (cell % 120 + 0.5) * size, rect[1] + (cell // 120 + 0.5) * size)
+        self.assertEqual(self.shown(), "sawpit-gully")
+        self.assertEqual(self.selected_row(), "sawpit-gully")
+        # A cell in no zone (the nodata corner, row 0, last column) leaves the selection alone.
+        self.browser.click(rect[0] + 119.5 * size, rect[1] + 0.5 * size)
+        self.assertEqual(self.shown(), "sawpit-gully")
+
+    def test_clicking_a_row_and_arrow_keys_select_zones(self):
+        ids = [z["id"] for z in load_valley()["zones"]]
+        i = ids.index("north-road")
+        self.browser.eval(f"document.querySelector('tr[data-index=\"{i}\"]').scrollIntoView()")
+        box = self.browser.eval(f"(() => {{ const r = document.querySelector('tr[data-index=\"{i}\"]').getBoundingClientRect();"
+                                " return [r.left + 20, r.top + r.height / 2]; })()")
+        self.browser.click(*box)
+        self.assertEqual(self.shown(), "north-road")
+        self.browser.eval(f"document.querySelector('tr[data-index=\"{i}\"]').focus()")
+        self.browser.key("ArrowDown", "ArrowDown")
+        self.assertEqual(self.shown(), ids[i + 1])
+        self.assertEqual(self.selected_row(), ids[i + 1])
+        # The chart's facts are the selected zone's numbers from the results.
+        res = {z["id"]: z for z in eval_valley()["zones"]}[ids[i + 1]]
+        facts = self.browser.eval("document.getElementById('facts').textContent")
+        self.assertIn(f"{res['mean']:.2f} (sd {res['sd']:.2f})", facts)
 
 
 if __name__ == "__main__":
