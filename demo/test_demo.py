@@ -223,6 +223,19 @@ class RunScript(unittest.TestCase):
             server.shutdown()
             server.server_close()
 
+    def test_service_mode_falls_back_to_a_polled_job_on_413(self):
+        server, url = stand_in.start(zonetally(), sync_cells=1000)
+        try:
+            seen = server.RequestHandlerClass.headers_seen
+            run = self.run_sh("--service", url)
+            self.assertEqual(run.returncode, 0, run.stderr)
+            self.assertIn("asynchronous job", run.stderr)
+            self.assertEqual([prefer for _, prefer in seen], ["", "respond-async"])
+            self.assertEqual(self.rows(run.stdout), self.rows(self.run_sh().stdout))
+        finally:
+            server.shutdown()
+            server.server_close()
+
     def test_service_mode_reports_a_problem_document(self):
         bad = load_valley()
         bad["evidence"]["total"] = 10**6
@@ -318,12 +331,12 @@ class PageRendered(unittest.TestCase):
         cls.server.server_close()
         shutil.rmtree(cls.data)
 
-    def dom(self, query=""):
+    def dom(self, query="", base=None):
         with tempfile.TemporaryDirectory() as profile:
             run = subprocess.run(
                 [CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
                  "--disable-component-update", "--disable-sync", "--no-first-run", f"--user-data-dir={profile}",
-                 "--virtual-time-budget=8000", "--dump-dom", f"{self.url}/demo{query}"],
+                 "--virtual-time-budget=8000", "--dump-dom", f"{base or self.url}/demo{query}"],
                 capture_output=True, text=True, timeout=120)
         self.assertEqual(run.returncode, 0, run.stderr[-2000:])
         return run.stdout
@@ -333,7 +346,7 @@ class PageRendered(unittest.TestCase):
         self.assertEqual(len(re.findall(r'<tr[^>]*data-index="\d+"', html)), len(load_valley()["zones"]))
         self.assertIn("observed total <b>371</b>", html)
         self.assertRegex(html, r'<div id="problem" class="problem" hidden')
-        self.assertIn("Results: POST /processes/zone-counts/execution", html)
+        self.assertIn("Results: POST /processes/zone-counts/execution, synchronous", html)
 
     def test_saved_results_via_query_parameter(self):
         html = self.dom("?results=/demo/results.json&zone=sawpit-gully")
@@ -343,6 +356,22 @@ class PageRendered(unittest.TestCase):
     def test_implausible_total_shows_the_warning(self):
         html = self.dom("?request=/demo/valley-high.json")
         self.assertIn("Warning: the observed total is implausible", html)
+
+    def test_too_large_for_sync_falls_back_to_a_polled_job(self):
+        server, url = stand_in.start(zonetally(), data_dir=self.data, sync_cells=1000)
+        try:
+            seen = server.RequestHandlerClass.headers_seen
+            html = self.dom("", base=url)
+            self.assertEqual(len(re.findall(r'<tr[^>]*data-index="\d+"', html)), len(load_valley()["zones"]))
+            self.assertIn("/processes/zone-counts/execution, asynchronous", html)
+            self.assertEqual([prefer for _, prefer in seen], ["", "respond-async"])
+            # A job that fails shows the problem document its results carry.
+            html = self.dom("?request=/demo/valley-bad.json", base=url)
+            self.assertIn("the job failed: invalid inputs", html)
+            self.assertIn("/zones/2/cells/3", html)
+        finally:
+            server.shutdown()
+            server.server_close()
 
     def test_rejected_inputs_show_the_problem_document(self):
         html = self.dom("?request=/demo/valley-bad.json")
