@@ -4,7 +4,9 @@
 use std::path::Path;
 
 /// Words that must not appear in `src/engine` (outside comments they would mean a dependency).
-const FOREIGN_TO_ENGINE: [&str; 8] = ["axum", "tokio", "serde", "hyper", "std::fs", "std::net", "std::io", "utoipa"];
+const FOREIGN_TO_ENGINE: [&str; 8] = [
+    "axum", "tokio", "serde", "hyper", "std::fs", "std::net", "std::io", "utoipa",
+];
 
 fn rust_files(dir: &Path, out: &mut Vec<std::path::PathBuf>) {
     for entry in std::fs::read_dir(dir).expect("source folder is readable") {
@@ -20,7 +22,10 @@ fn rust_files(dir: &Path, out: &mut Vec<std::path::PathBuf>) {
 #[test]
 fn engine_knows_nothing_of_http_async_json_or_files() {
     let mut files = Vec::new();
-    rust_files(&Path::new(env!("CARGO_MANIFEST_DIR")).join("src/engine"), &mut files);
+    rust_files(
+        &Path::new(env!("CARGO_MANIFEST_DIR")).join("src/engine"),
+        &mut files,
+    );
     assert!(files.len() >= 5, "found the engine's files");
     let mut hits = Vec::new();
     for file in &files {
@@ -34,5 +39,9 @@ fn engine_knows_nothing_of_http_async_json_or_files() {
             }
         }
     }
-    assert!(hits.is_empty(), "the engine must stay pure:\n{}", hits.join("\n"));
+    assert!(
+        hits.is_empty(),
+        "the engine must stay pure:\n{}",
+        hits.join("\n")
+    );
 }
