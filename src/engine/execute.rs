@@ -458,7 +458,8 @@ fn certify(
     let gap = posterior_gap.min(dropped * (1.0 + 1e-9)) + 2.0 * fft;
     let truncation = 2.0 * gap / normaliser.z_lo;
     let rounding = gamma(2 * k + len as u64 + 2);
-    let measured = 2.0 * (z_mid - s).max(0.0) / z_mid;
+    // What the windows measurably lost, beyond what rounding alone could explain.
+    let measured = (2.0 * (z_mid - s) / z_mid - 4.0 * gamma(chain)).max(0.0);
     (
         (truncation + rounding) * (1.0 + 8.0 * UNIT_ROUNDOFF),
         measured,
