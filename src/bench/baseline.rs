@@ -48,7 +48,7 @@ impl Pmf {
             .unwrap_or(0.0)
     }
 
-    /// Largest |P(k) - Q(k)| over all k.
+    /// Largest |P(k) - Q(k)| over all k; infinite when either holds a non-finite value.
     pub fn max_abs_diff(&self, offset: u64, values: &[f64]) -> f64 {
         let other = Pmf {
             offset,
@@ -57,7 +57,14 @@ impl Pmf {
         let lo = self.offset.min(offset);
         let hi = (self.offset + self.values.len() as u64).max(offset + values.len() as u64);
         (lo..hi)
-            .map(|k| (self.at(k) - other.at(k)).abs())
+            .map(|k| {
+                let d = (self.at(k) - other.at(k)).abs();
+                if d.is_finite() {
+                    d
+                } else {
+                    f64::INFINITY
+                }
+            })
             .fold(0.0, f64::max)
     }
 }
@@ -392,6 +399,17 @@ mod tests {
         }
         v[10] = f64::NAN;
         Raster::from_probabilities(7, 6, v).unwrap()
+    }
+
+    #[test]
+    fn differences_see_non_finite_values() {
+        let p = Pmf {
+            offset: 2,
+            values: vec![0.5, 0.5],
+        };
+        assert_eq!(p.max_abs_diff(2, &[0.5, 0.5]), 0.0);
+        assert_eq!(p.max_abs_diff(1, &[0.5, 0.5]), 0.5);
+        assert_eq!(p.max_abs_diff(2, &[f64::NAN, 0.5]), f64::INFINITY);
     }
 
     #[test]
