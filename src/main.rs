@@ -3,7 +3,11 @@
 use clap::{Parser, Subcommand};
 
 #[derive(Parser)]
-#[command(name = "zonetally", version, about = "Conditional zone-count distributions given an observed total")]
+#[command(
+    name = "zonetally",
+    version,
+    about = "Conditional zone-count distributions given an observed total"
+)]
 struct Cli {
     #[command(subcommand)]
     command: Command,
