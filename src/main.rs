@@ -44,7 +44,11 @@ fn main() {
                 std::process::exit(e.code);
             }
         },
-        Command::Bench { workload, json, list } => bench(workload.as_deref(), json.as_deref(), list),
+        Command::Bench {
+            workload,
+            json,
+            list,
+        } => bench(workload.as_deref(), json.as_deref(), list),
     }
 }
 
@@ -62,7 +66,8 @@ fn bench(workload: Option<&str>, json: Option<&std::path::Path>, list: bool) {
     let report = bench::run(&workloads, &mut std::io::stderr()).unwrap_or_else(|e| fail(e, 1));
     print!("{}", bench::render(&report));
     if let Some(path) = json {
-        let text = serde_json::to_string_pretty(&report).unwrap_or_else(|e| fail(format!("cannot encode the report: {e}"), 1));
+        let text = serde_json::to_string_pretty(&report)
+            .unwrap_or_else(|e| fail(format!("cannot encode the report: {e}"), 1));
         std::fs::write(path, text + "\n")
             .unwrap_or_else(|e| fail(format!("cannot write --json `{}`: {e}", path.display()), 1));
     }
