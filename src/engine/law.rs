@@ -89,6 +89,9 @@ pub(crate) struct Law {
     pub dropped: f64,
     /// Roundings along the longest dependency chain of any value.
     pub rounding: u64,
+    /// Bound on the absolute error any value carries from FFT convolutions (zero when every
+    /// step was direct).
+    pub abs_err: f64,
 }
 
 impl Law {
@@ -99,6 +102,7 @@ impl Law {
             values: vec![1.0],
             dropped: 0.0,
             rounding: 0,
+            abs_err: 0.0,
         }
     }
 
@@ -175,8 +179,31 @@ impl Law {
     }
 }
 
-/// The law of the sum of two independent counts: full direct convolution.
-pub(crate) fn convolve(a: &Law, b: &Law) -> Law {
+/// Laws at least this wide on both sides are convolved by FFT: O(n log n) against the direct
+/// O(n^2), which it beats from about 500 entries on these machines (measured on W250k-partition
+/// top levels); below, direct convolution keeps its relative accuracy in the tails.
+pub(crate) const FFT_MIN_LEN: usize = 768;
+
+/// Slack on mass when propagating absolute errors: computed laws hold at most 1 + len u of mass.
+const MASS_SLACK: f64 = 1.0 + 1e-9;
+
+/// The law of the sum of two independent counts: FFT when both are at least `fft_min` wide,
+/// direct otherwise.
+pub(crate) fn convolve(a: &Law, b: &Law, fft_min: usize) -> Law {
+    if a.len().min(b.len()) >= fft_min {
+        let (values, err) = super::fft::convolve(&a.values, &b.values);
+        return Law {
+            lo: a.lo + b.lo,
+            values,
+            dropped: a.dropped + b.dropped,
+            rounding: a.rounding + b.rounding,
+            abs_err: (a.abs_err + b.abs_err) * MASS_SLACK + err,
+        };
+    }
+    convolve_direct(a, b)
+}
+
+fn convolve_direct(a: &Law, b: &Law) -> Law {
     let (short, long) = if a.len() <= b.len() { (a, b) } else { (b, a) };
     let mut out = vec![0.0; a.len() + b.len() - 1];
     let ll = long.len();
@@ -191,16 +218,20 @@ pub(crate) fn convolve(a: &Law, b: &Law) -> Law {
         values: out,
         dropped: a.dropped + b.dropped,
         rounding: a.rounding + b.rounding + short.len() as u64,
+        abs_err: (a.abs_err + b.abs_err) * MASS_SLACK,
     }
 }
 
 /// The convolution of `a` and `b`, computed only for count values in `[lo, hi]`.
 /// Returns `None` when the range is empty or misses the support entirely.
-pub(crate) fn convolve_range(a: &Law, b: &Law, lo: u64, hi: u64) -> Option<Law> {
+pub(crate) fn convolve_range(a: &Law, b: &Law, lo: u64, hi: u64, fft_min: usize) -> Option<Law> {
     let lo = lo.max(a.lo + b.lo);
     let hi = hi.min(a.hi() + b.hi());
     if lo > hi {
         return None;
+    }
+    if a.len().min(b.len()) >= fft_min {
+        return restrict(convolve(a, b, fft_min), lo, hi);
     }
     let width = (hi - lo + 1) as usize;
     let mut out = vec![0.0; width];
@@ -226,6 +257,7 @@ pub(crate) fn convolve_range(a: &Law, b: &Law, lo: u64, hi: u64) -> Option<Law> 
         values: out,
         dropped: a.dropped + b.dropped,
         rounding: a.rounding + b.rounding + a.len().min(b.len()) as u64,
+        abs_err: (a.abs_err + b.abs_err) * MASS_SLACK,
     })
 }
 
@@ -245,8 +277,7 @@ pub(crate) fn restrict(law: Law, lo: u64, hi: u64) -> Option<Law> {
     Some(Law {
         lo: lo2,
         values: law.values[start..end].to_vec(),
-        dropped: law.dropped,
-        rounding: law.rounding,
+        ..law
     })
 }
 
@@ -275,20 +306,26 @@ mod tests {
         a.add_cells([(0.3, 0.7), (0.6, 0.4), (0.1, 0.9)]);
         let mut b = Law::unit();
         b.add_cells([(0.2, 0.8), (0.9, 0.1)]);
-        let full = convolve(&a, &b);
+        let full = convolve(&a, &b, usize::MAX);
+        let by_fft = convolve(&a, &b, 1);
+        for k in 0..=5 {
+            // reference: the direct convolution, within the FFT's own error bound
+            assert!((full.at(k) - by_fft.at(k)).abs() <= by_fft.abs_err, "k {k}");
+        }
+        assert!(by_fft.abs_err > 0.0 && by_fft.abs_err < 1e-13);
         // reference: the same cells folded one at a time
         let mut one = Law::unit();
         one.add_cells([(0.3, 0.7), (0.6, 0.4), (0.1, 0.9), (0.2, 0.8), (0.9, 0.1)]);
         for k in 0..=5 {
             assert!((full.at(k) - one.at(k)).abs() < 1e-16);
         }
-        let part = convolve_range(&a, &b, 2, 4).unwrap();
+        let part = convolve_range(&a, &b, 2, 4, usize::MAX).unwrap();
         assert_eq!(part.lo, 2);
         for k in 2..=4 {
             assert!((part.at(k) - full.at(k)).abs() < 1e-16);
         }
-        assert!(convolve_range(&a, &b, 6, 9).is_none());
-        let c = convolve(&bern(0.25), &bern(0.5));
+        assert!(convolve_range(&a, &b, 6, 9, usize::MAX).is_none());
+        let c = convolve(&bern(0.25), &bern(0.5), usize::MAX);
         assert_eq!(c.values, vec![0.375, 0.5, 0.125]);
     }
 
@@ -299,6 +336,7 @@ mod tests {
             values: vec![1e-20, 1e-9, 0.5, 0.5 - 2e-9, 1e-9, 1e-19],
             dropped: 0.0,
             rounding: 0,
+            abs_err: 0.0,
         };
         l.trim(1e-18);
         assert_eq!(l.lo, 11);

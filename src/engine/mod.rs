@@ -8,6 +8,7 @@
 mod control;
 mod error;
 mod execute;
+mod fft;
 pub(crate) mod law;
 mod model;
 mod normaliser;

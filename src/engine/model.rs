@@ -44,24 +44,7 @@ impl Raster {
     /// Occurs as an error when the size does not match, the raster is empty or larger than
     /// `u32` indices allow, or a value is not a probability.
     pub fn new(width: u32, height: u32, values: Vec<Option<f64>>) -> Result<Raster, EngineError> {
-        let expected = (width as u64) * (height as u64);
-        if width == 0 || height == 0 {
-            return Err(EngineError::InvalidRaster(format!(
-                "raster is {width}x{height}: width and height must both be at least 1"
-            )));
-        }
-        if expected > u32::MAX as u64 {
-            return Err(EngineError::InvalidRaster(format!(
-                "raster is {width}x{height} = {expected} cells: at most {} cells are supported",
-                u32::MAX
-            )));
-        }
-        if values.len() as u64 != expected {
-            return Err(EngineError::InvalidRaster(format!(
-                "raster is {width}x{height} = {expected} cells but {} values were given",
-                values.len()
-            )));
-        }
+        check_shape(width, height, values.len())?;
         let mut out = Vec::with_capacity(values.len());
         for (i, v) in values.into_iter().enumerate() {
             match v {
@@ -80,18 +63,29 @@ impl Raster {
         Ok(Self::from_checked(width, height, out))
     }
 
-    /// Builds a raster from values already known to be in [0, 1] or NaN (nodata).
-    /// Used by generators that produce valid values by construction.
+    /// Builds a raster from row-major values where NaN marks nodata, validating in place (no
+    /// copy: large generated rasters need not exist twice).
+    ///
+    /// Occurs as an error on the same conditions as `new`.
     pub fn from_probabilities(
         width: u32,
         height: u32,
         values: Vec<f64>,
     ) -> Result<Raster, EngineError> {
-        let wrapped = values
-            .into_iter()
-            .map(|p| if p.is_nan() { None } else { Some(p) })
-            .collect();
-        Raster::new(width, height, wrapped)
+        check_shape(width, height, values.len())?;
+        if let Some(i) = values
+            .iter()
+            .position(|p| !p.is_nan() && !(0.0..=1.0).contains(p))
+        {
+            let p = values[i];
+            return Err(EngineError::InvalidValue {
+                cell: i as u32,
+                detail: format!(
+                    "cell {i} has value {p}: a probability must lie in [0, 1] (use nodata for cells outside the study area)"
+                ),
+            });
+        }
+        Ok(Self::from_checked(width, height, values))
     }
 
     fn from_checked(width: u32, height: u32, values: Vec<f64>) -> Raster {
@@ -149,6 +143,29 @@ impl Raster {
     pub fn row_col(&self, cell: CellIndex) -> (u32, u32) {
         (cell.0 / self.width, cell.0 % self.width)
     }
+}
+
+/// Occurs as an error when the size does not match, the raster is empty or larger than `u32`
+/// indices allow.
+fn check_shape(width: u32, height: u32, len: usize) -> Result<(), EngineError> {
+    let expected = (width as u64) * (height as u64);
+    if width == 0 || height == 0 {
+        return Err(EngineError::InvalidRaster(format!(
+            "raster is {width}x{height}: width and height must both be at least 1"
+        )));
+    }
+    if expected > u32::MAX as u64 {
+        return Err(EngineError::InvalidRaster(format!(
+            "raster is {width}x{height} = {expected} cells: at most {} cells are supported",
+            u32::MAX
+        )));
+    }
+    if len as u64 != expected {
+        return Err(EngineError::InvalidRaster(format!(
+            "raster is {width}x{height} = {expected} cells but {len} values were given"
+        )));
+    }
+    Ok(())
 }
 
 /// A named set of cells. Cells are distinct, valid (not nodata) and sorted.

@@ -7,7 +7,7 @@
 
 use super::control::Control;
 use super::error::EngineError;
-use super::law::{gamma, Law, UNIT_ROUNDOFF};
+use super::law::{gamma, Law, FFT_MIN_LEN, UNIT_ROUNDOFF};
 use super::model::{Raster, MIN_TOLERANCE};
 use super::sets::{trims_for, Cells};
 use super::tilt::{self, Tilt};
@@ -128,13 +128,14 @@ impl Normaliser {
             values,
             t: tilt.t,
             eps,
+            fft_min: FFT_MIN_LEN,
         }
         .law_of_span(0, values.len());
         control.check()?;
         let z = law.at(target);
         let g = gamma(law.rounding);
-        let z_lo = z * (1.0 - g);
-        let z_hi = (z * (1.0 + g) + law.dropped) * (1.0 + 2.0 * UNIT_ROUNDOFF);
+        let z_lo = (z - law.abs_err).max(0.0) * (1.0 - g);
+        let z_hi = ((z + law.abs_err) * (1.0 + g) + law.dropped) * (1.0 + 2.0 * UNIT_ROUNDOFF);
 
         let log_eq = z.ln() + tilt.log_c - tilt.theta * target as f64;
         let p_eq = log_eq.exp();

@@ -23,6 +23,8 @@ pub(crate) struct Cells<'a> {
     pub t: f64,
     /// Mass each trim may drop.
     pub eps: f64,
+    /// Laws at least this wide on both sides are convolved by FFT (`law::FFT_MIN_LEN`).
+    pub fft_min: usize,
 }
 
 impl Cells<'_> {
@@ -56,7 +58,7 @@ impl Cells<'_> {
         } else {
             (self.tree(len, index, a, mid), self.tree(len, index, mid, b))
         };
-        let mut law = convolve(&l, &r);
+        let mut law = convolve(&l, &r, self.fft_min);
         law.trim(self.eps);
         law
     }
@@ -81,6 +83,7 @@ mod tests {
             values: &values,
             t: 0.8,
             eps: 0.0,
+            fft_min: usize::MAX,
         };
         let tree = cells.law_of_span(0, values.len());
         // reference: the plain one-cell-at-a-time fold (naive reference kept for this purpose)
