@@ -4,5 +4,6 @@
 //! `engine` is the numerical core (pure, synchronous); `api` owns the wire format and HTTP.
 
 pub mod api;
+pub mod bench;
 pub mod cli;
 pub mod engine;
