@@ -339,7 +339,7 @@ fn run_one(w: &Workload, log: &mut dyn Write) -> Result<Row, String> {
     if let (Some(all), Some(eng)) = (row.peak_rss_ratio, row.engine_rss_ratio) {
         if all > 1.01 * eng {
             notes.push(format!(
-                "peak RSS ({all:.2}x the raster's f64 bytes) is reached while the inputs are built, not in the engine (engine-only {eng:.2}x); it includes {} held at the start, and Raster::new holds its Vec<Option<f64>> input (16 bytes a cell) beside its f64 copy (8 bytes a cell)",
+                "peak RSS ({all:.2}x the raster's f64 bytes) is reached while the inputs are built, not in the engine (engine-only {eng:.2}x); it includes {} held at the start",
                 row.start_rss_bytes.map_or("an unknown amount".into(), mib)
             ));
         }

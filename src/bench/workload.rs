@@ -111,17 +111,18 @@ impl Field {
 
     /// Samples the field on a width x height grid, row-major, row 0 at the top.
     pub fn raster(&self, width: u32, height: u32) -> Raster {
-        let mut values = vec![None; width as usize * height as usize];
+        let mut values = vec![0.0; width as usize * height as usize];
         values
             .par_chunks_mut(width as usize)
             .enumerate()
             .for_each(|(row, out)| {
                 let y = (row as f64 + 0.5) / height as f64;
                 for (col, v) in out.iter_mut().enumerate() {
-                    *v = Some(self.probability((col as f64 + 0.5) / width as f64, y));
+                    *v = self.probability((col as f64 + 0.5) / width as f64, y);
                 }
             });
-        Raster::new(width, height, values).expect("the field yields probabilities by construction")
+        Raster::from_probabilities(width, height, values)
+            .expect("the field yields probabilities by construction")
     }
 }
 
