@@ -1069,6 +1069,26 @@ mod tests {
     }
 
     #[test]
+    fn progress_is_reported_and_cancellation_stops_the_work() {
+        let mut rng = ChaCha8Rng::seed_from_u64(17);
+        let r = random_raster(&mut rng, 40, 30, false);
+        let zones = random_zones(&mut rng, &r, 12, false);
+        let st = r.stats();
+        let total = st.sum_p.round() as u64;
+        let control = Control::new();
+        let norm = Normaliser::new(&r, total, &control).unwrap();
+        let p = plan(&r, &zones);
+        execute(&p, &r, &zones, &norm, &Settings::default(), &control).unwrap();
+        assert!(control.progress() > 0.3, "progress {}", control.progress());
+        let cancelled = Control::new();
+        cancelled.cancel();
+        let got = execute(&p, &r, &zones, &norm, &Settings::default(), &cancelled);
+        assert_eq!(got, Err(EngineError::Cancelled));
+        let cells = cell_posterior(&r, None, &norm, &Settings::default(), &cancelled);
+        assert_eq!(cells, Err(EngineError::Cancelled));
+    }
+
+    #[test]
     fn fft_path_matches_reference() {
         // FFT forced from 64-wide laws up, so the small rasters here exercise it at every level.
         let mut rng = ChaCha8Rng::seed_from_u64(13);
