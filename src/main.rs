@@ -3,7 +3,11 @@
 use clap::{Parser, Subcommand};
 
 #[derive(Parser)]
-#[command(name = "zonetally", version, about = "Conditional zone-count distributions given an observed total")]
+#[command(
+    name = "zonetally",
+    version,
+    about = "Conditional zone-count distributions given an observed total"
+)]
 struct Cli {
     #[command(subcommand)]
     command: Command,
@@ -35,7 +39,10 @@ fn main() {
         Command::Openapi => print!("{}", zonetally::api::openapi_json()),
         Command::Serve(config) => {
             init_tracing(config.log_json);
-            let runtime = match tokio::runtime::Builder::new_multi_thread().enable_all().build() {
+            let runtime = match tokio::runtime::Builder::new_multi_thread()
+                .enable_all()
+                .build()
+            {
                 Ok(r) => r,
                 Err(e) => {
                     eprintln!("zonetally: cannot start the async runtime: {e}");
@@ -52,8 +59,11 @@ fn main() {
 
 fn init_tracing(json: bool) {
     use tracing_subscriber::EnvFilter;
-    let filter = EnvFilter::try_from_env("ZONETALLY_LOG").unwrap_or_else(|_| EnvFilter::new("info"));
-    let builder = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr);
+    let filter =
+        EnvFilter::try_from_env("ZONETALLY_LOG").unwrap_or_else(|_| EnvFilter::new("info"));
+    let builder = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr);
     if json {
         builder.json().init();
     } else {

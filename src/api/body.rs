@@ -10,12 +10,28 @@ use super::problem::ApiError;
 
 /// Checks that the body is declared as JSON (`application/json` or any `+json` type).
 pub fn require_json(headers: &HeaderMap) -> Result<(), ApiError> {
-    let got = headers.get(header::CONTENT_TYPE).and_then(|v| v.to_str().ok()).unwrap_or("");
-    let essence = got.split(';').next().unwrap_or("").trim().to_ascii_lowercase();
-    if essence == "application/json" || (essence.starts_with("application/") && essence.ends_with("+json")) {
+    let got = headers
+        .get(header::CONTENT_TYPE)
+        .and_then(|v| v.to_str().ok())
+        .unwrap_or("");
+    let essence = got
+        .split(';')
+        .next()
+        .unwrap_or("")
+        .trim()
+        .to_ascii_lowercase();
+    if essence == "application/json"
+        || (essence.starts_with("application/") && essence.ends_with("+json"))
+    {
         Ok(())
     } else {
-        Err(ApiError::UnsupportedMediaType { got: if got.is_empty() { "no Content-Type".into() } else { got.into() } })
+        Err(ApiError::UnsupportedMediaType {
+            got: if got.is_empty() {
+                "no Content-Type".into()
+            } else {
+                got.into()
+            },
+        })
     }
 }
 
@@ -27,7 +43,10 @@ pub fn rejection(r: BytesRejection, limit: usize) -> ApiError {
             detail: format!("the body is larger than this service's limit of {limit} bytes: send a smaller request, or post the raster to /rasters once and refer to it"),
         }
     } else {
-        ApiError::MalformedJson { pointer: String::new(), detail: format!("the body could not be read: {}", r.body_text()) }
+        ApiError::MalformedJson {
+            pointer: String::new(),
+            detail: format!("the body could not be read: {}", r.body_text()),
+        }
     }
 }
 
@@ -66,16 +85,24 @@ pub fn parse<T: DeserializeOwned>(bytes: &[u8]) -> Result<T, ApiError> {
     let value: T = serde_path_to_error::deserialize(&mut de).map_err(|e| {
         let pointer = pointer_of(e.path());
         let inner = e.into_inner();
-        ApiError::MalformedJson { pointer, detail: describe(&inner) }
+        ApiError::MalformedJson {
+            pointer,
+            detail: describe(&inner),
+        }
     })?;
-    de.end().map_err(|e| ApiError::MalformedJson { pointer: String::new(), detail: describe(&e) })?;
+    de.end().map_err(|e| ApiError::MalformedJson {
+        pointer: String::new(),
+        detail: describe(&e),
+    })?;
     Ok(value)
 }
 
 fn describe(e: &serde_json::Error) -> String {
     use serde_json::error::Category;
     let hint = match e.classify() {
-        Category::Syntax => ": the body is not valid JSON (note JSON has no NaN or Infinity: use null for nodata)",
+        Category::Syntax => {
+            ": the body is not valid JSON (note JSON has no NaN or Infinity: use null for nodata)"
+        }
         Category::Eof => ": the body ends early",
         Category::Data => "",
         Category::Io => "",
@@ -90,7 +117,9 @@ fn pointer_of(path: &serde_path_to_error::Path) -> String {
     for seg in path.iter() {
         match seg {
             Segment::Seq { index } => out.push_str(&format!("/{index}")),
-            Segment::Map { key } => out.push_str(&format!("/{}", key.replace('~', "~0").replace('/', "~1"))),
+            Segment::Map { key } => {
+                out.push_str(&format!("/{}", key.replace('~', "~0").replace('/', "~1")))
+            }
             Segment::Enum { variant } => out.push_str(&format!("/{variant}")),
             Segment::Unknown => {}
         }

@@ -28,7 +28,11 @@ pub fn raster_hash(raster: &Raster) -> String {
     for chunk in raster.values().chunks(4096) {
         buf.clear();
         for &p in chunk {
-            let bits = if p.is_nan() { NODATA_BITS } else { (p + 0.0).to_bits() };
+            let bits = if p.is_nan() {
+                NODATA_BITS
+            } else {
+                (p + 0.0).to_bits()
+            };
             buf.extend_from_slice(&bits.to_le_bytes());
         }
         h.update(&buf);
@@ -44,7 +48,11 @@ pub fn raster_hash(raster: &Raster) -> String {
 
 /// Whether `s` looks like a hash this service hands out.
 pub fn is_hash(s: &str) -> bool {
-    s.strip_prefix("sha256:").is_some_and(|h| h.len() == 64 && h.bytes().all(|b| b.is_ascii_digit() || (b'a'..=b'f').contains(&b)))
+    s.strip_prefix("sha256:").is_some_and(|h| {
+        h.len() == 64
+            && h.bytes()
+                .all(|b| b.is_ascii_digit() || (b'a'..=b'f').contains(&b))
+    })
 }
 
 #[derive(Clone, Copy, Debug, Default, PartialEq)]
@@ -89,7 +97,11 @@ impl Caches {
     /// A raster by hash, counting the hit or miss.
     pub fn raster(&self, hash: &str) -> Option<Arc<Raster>> {
         let got = self.rasters.get(hash);
-        let counter = if got.is_some() { &self.raster_hits } else { &self.raster_misses };
+        let counter = if got.is_some() {
+            &self.raster_hits
+        } else {
+            &self.raster_misses
+        };
         counter.fetch_add(1, Ordering::Relaxed);
         got
     }
@@ -107,7 +119,13 @@ impl Caches {
     }
 
     /// The normaliser of (raster, total), computed on a miss. Runs on the compute pool.
-    pub fn normaliser(&self, hash: &str, raster: &Raster, total: u64, control: &Control) -> Result<Arc<Normaliser>, EngineError> {
+    pub fn normaliser(
+        &self,
+        hash: &str,
+        raster: &Raster,
+        total: u64,
+        control: &Control,
+    ) -> Result<Arc<Normaliser>, EngineError> {
         let key = (hash.to_string(), total);
         if let Some(n) = self.normalisers.get(&key) {
             self.normaliser_hits.fetch_add(1, Ordering::Relaxed);
@@ -152,7 +170,11 @@ mod tests {
         let d = Raster::new(1, 2, vec![Some(0.0), None]).unwrap();
         assert_eq!(raster_hash(&a), raster_hash(&b));
         assert_ne!(raster_hash(&a), raster_hash(&c));
-        assert_ne!(raster_hash(&a), raster_hash(&d), "the shape is part of the hash");
+        assert_ne!(
+            raster_hash(&a),
+            raster_hash(&d),
+            "the shape is part of the hash"
+        );
         assert!(is_hash(&raster_hash(&a)));
         assert!(!is_hash("sha256:XYZ"));
     }

@@ -95,7 +95,11 @@ impl Default for Config {
 
 impl Config {
     pub fn limits(&self) -> Limits {
-        Limits { max_cells: self.max_cells, max_zones: self.max_zones, max_zone_cells: self.max_zone_cells }
+        Limits {
+            max_cells: self.max_cells,
+            max_zones: self.max_zones,
+            max_zone_cells: self.max_zone_cells,
+        }
     }
     pub fn job_ttl(&self) -> Duration {
         secs(self.job_ttl)
@@ -120,6 +124,10 @@ mod tests {
     fn default_matches_the_flags() {
         let parsed = Config::parse_from(["serve"]);
         let d = Config::default();
-        assert_eq!(format!("{parsed:?}"), format!("{d:?}"), "Config::default and the clap defaults diverged");
+        assert_eq!(
+            format!("{parsed:?}"),
+            format!("{d:?}"),
+            "Config::default and the clap defaults diverged"
+        );
     }
 }

@@ -40,8 +40,18 @@ use state::AppState;
 
 #[derive(OpenApi)]
 #[openapi(
-    info(title = "zonetally", description = "Conditional zone-count distributions from a probability raster and an observed total, as OGC API - Processes - Part 1: Core 1.0. Every error is an RFC 9457 problem document.", license(name = "MIT OR Apache-2.0")),
-    components(schemas(problem::Problem, wire::EvalRequest, wire::ResultsDocument, wire::PosteriorDocument))
+    info(
+        title = "zonetally",
+        description = "Conditional zone-count distributions from a probability raster and an observed total, as OGC API - Processes - Part 1: Core 1.0. Every error is an RFC 9457 problem document.",
+        license(name = "MIT OR Apache-2.0")
+    ),
+    components(schemas(
+        problem::Problem,
+        wire::EvalRequest,
+        wire::ResultsDocument,
+        wire::PosteriorDocument,
+        wire::PosteriorInputs
+    ))
 )]
 struct ApiDoc;
 
@@ -70,14 +80,18 @@ pub fn openapi_json() -> &'static str {
     static DOC: OnceLock<String> = OnceLock::new();
     DOC.get_or_init(|| {
         let (_, api) = routes().split_for_parts();
-        let mut s = api.to_pretty_json().unwrap_or_else(|e| format!("{{\"error\": \"{e}\"}}"));
+        let mut s = api
+            .to_pretty_json()
+            .unwrap_or_else(|e| format!("{{\"error\": \"{e}\"}}"));
         s.push('\n');
         s
     })
 }
 
 async fn not_found(uri: Uri) -> ApiError {
-    ApiError::NotFound { path: uri.path().to_string() }
+    ApiError::NotFound {
+        path: uri.path().to_string(),
+    }
 }
 
 async fn method_not_allowed() -> ApiError {
@@ -90,7 +104,10 @@ async fn time_limit(State(state): State<AppState>, req: Request, next: Next) -> 
     let limit = state.config().request_timeout();
     match tokio::time::timeout(limit, next.run(req)).await {
         Ok(resp) => resp,
-        Err(_) => ApiError::Timeout { seconds: limit.as_secs_f64() }.into_response(),
+        Err(_) => ApiError::Timeout {
+            seconds: limit.as_secs_f64(),
+        }
+        .into_response(),
     }
 }
 
@@ -104,18 +121,35 @@ pub fn router(state: AppState) -> Router {
         .fallback(not_found)
         .method_not_allowed_fallback(method_not_allowed)
         .route_layer(middleware::from_fn_with_state(state.clone(), time_limit))
-        .route_layer(middleware::from_fn_with_state(state.clone(), metrics::record))
+        .route_layer(middleware::from_fn_with_state(
+            state.clone(),
+            metrics::record,
+        ))
         .layer(DefaultBodyLimit::max(config.max_body_bytes))
         .layer(CompressionLayer::new().gzip(true))
         .with_state(state);
     if !config.cors_origins.is_empty() {
-        let origins: Vec<HeaderValue> = config.cors_origins.iter().filter_map(|o| HeaderValue::from_str(o.trim()).ok()).collect();
+        let origins: Vec<HeaderValue> = config
+            .cors_origins
+            .iter()
+            .filter_map(|o| HeaderValue::from_str(o.trim()).ok())
+            .collect();
         app = app.layer(
             CorsLayer::new()
                 .allow_origin(AllowOrigin::list(origins))
                 .allow_methods([Method::GET, Method::POST, Method::DELETE])
-                .allow_headers([axum::http::header::CONTENT_TYPE, HeaderName::from_static("prefer"), axum::http::header::IF_NONE_MATCH])
-                .expose_headers([axum::http::header::LOCATION, axum::http::header::ETAG, axum::http::header::RETRY_AFTER, HeaderName::from_static("preference-applied"), request_id.clone()])
+                .allow_headers([
+                    axum::http::header::CONTENT_TYPE,
+                    HeaderName::from_static("prefer"),
+                    axum::http::header::IF_NONE_MATCH,
+                ])
+                .expose_headers([
+                    axum::http::header::LOCATION,
+                    axum::http::header::ETAG,
+                    axum::http::header::RETRY_AFTER,
+                    HeaderName::from_static("preference-applied"),
+                    request_id.clone(),
+                ])
                 .max_age(Duration::from_secs(600)),
         );
     }

@@ -1,8 +1,8 @@
 //! OGC API - Processes - Part 1: Core 1.0 (OGC 18-062r2): landing page, conformance, process
 //! list and descriptions, execution (sync and async), and the job endpoints.
 //!
-//! Handlers parse headers and paths, then hand the body to the compute pool; they never compute
-//! here. Sync is the default; `Prefer: respond-async` creates a job. GET handlers ignore `Prefer`.
+//! Handlers parse headers and paths, then hand the body to a blocking thread for parsing and
+//! validation and the validated work to the compute pool; they never compute on the runtime. Sync is the default; `Prefer: respond-async` creates a job. GET handlers ignore `Prefer`.
 
 use std::sync::Arc;
 use std::time::{Instant, SystemTime};
@@ -46,7 +46,12 @@ pub struct Link {
 }
 
 fn link(href: impl Into<String>, rel: impl Into<String>, media_type: &str, title: &str) -> Link {
-    Link { href: href.into(), rel: rel.into(), media_type: Some(media_type.into()), title: Some(title.into()) }
+    Link {
+        href: href.into(),
+        rel: rel.into(),
+        media_type: Some(media_type.into()),
+        title: Some(title.into()),
+    }
 }
 
 #[derive(Serialize, ToSchema)]
@@ -80,12 +85,23 @@ pub struct Conformance {
 
 /// The conformance classes claimed: only those the tests exercise.
 pub fn conformance_classes() -> Vec<String> {
-    ["core", "ogc-process-description", "json", "job-list", "dismiss"].iter().map(|c| format!("{CONF}/{c}")).collect()
+    [
+        "core",
+        "ogc-process-description",
+        "json",
+        "job-list",
+        "dismiss",
+    ]
+    .iter()
+    .map(|c| format!("{CONF}/{c}"))
+    .collect()
 }
 
 #[utoipa::path(get, path = "/conformance", tag = "ogc", responses((status = 200, description = "conformance classes", body = Conformance)))]
 pub async fn conformance() -> Json<Conformance> {
-    Json(Conformance { conforms_to: conformance_classes() })
+    Json(Conformance {
+        conforms_to: conformance_classes(),
+    })
 }
 
 #[derive(Serialize, ToSchema)]
@@ -126,11 +142,25 @@ fn summary(p: &dyn Process) -> ProcessSummary {
         title: p.title().into(),
         description: p.description().into(),
         version: env!("CARGO_PKG_VERSION").into(),
-        job_control_options: vec!["sync-execute".into(), "async-execute".into(), "dismiss".into()],
+        job_control_options: vec![
+            "sync-execute".into(),
+            "async-execute".into(),
+            "dismiss".into(),
+        ],
         output_transmission: vec!["value".into()],
         links: vec![
-            link(format!("/processes/{id}"), "self", JSON, "process description"),
-            link(format!("/processes/{id}/execution"), format!("{OGC_REL}/execute"), JSON, "execute"),
+            link(
+                format!("/processes/{id}"),
+                "self",
+                JSON,
+                "process description",
+            ),
+            link(
+                format!("/processes/{id}/execution"),
+                format!("{OGC_REL}/execute"),
+                JSON,
+                "execute",
+            ),
         ],
     }
 }
@@ -138,7 +168,11 @@ fn summary(p: &dyn Process) -> ProcessSummary {
 #[utoipa::path(get, path = "/processes", tag = "ogc", responses((status = 200, description = "the processes offered", body = ProcessList)))]
 pub async fn processes(State(state): State<AppState>) -> Json<ProcessList> {
     Json(ProcessList {
-        processes: state.processes().iter().map(|p| summary(p.as_ref())).collect(),
+        processes: state
+            .processes()
+            .iter()
+            .map(|p| summary(p.as_ref()))
+            .collect(),
         links: vec![link("/processes", "self", JSON, "this document")],
     })
 }
@@ -147,9 +181,16 @@ pub async fn processes(State(state): State<AppState>) -> Json<ProcessList> {
     params(("processId" = String, Path, description = "process id")),
     responses((status = 200, description = "process description", body = ProcessDescription),
               (status = 404, description = "no such process", body = Problem, content_type = "application/problem+json")))]
-pub async fn process(State(state): State<AppState>, Path(id): Path<String>) -> Result<Json<ProcessDescription>, ApiError> {
+pub async fn process(
+    State(state): State<AppState>,
+    Path(id): Path<String>,
+) -> Result<Json<ProcessDescription>, ApiError> {
     let p = state.process(&id).ok_or(ApiError::NoSuchProcess { id })?;
-    Ok(Json(ProcessDescription { summary: summary(p.as_ref()), inputs: p.inputs(), outputs: p.outputs() }))
+    Ok(Json(ProcessDescription {
+        summary: summary(p.as_ref()),
+        inputs: p.inputs(),
+        outputs: p.outputs(),
+    }))
 }
 
 /// Whether `Prefer` asks for async execution (`respond-async`); also whether it named
@@ -160,7 +201,13 @@ fn preference(headers: &HeaderMap) -> (bool, bool) {
         .iter()
         .filter_map(|v| v.to_str().ok())
         .flat_map(|v| v.split(','))
-        .map(|t| t.split(';').next().unwrap_or("").trim().to_ascii_lowercase());
+        .map(|t| {
+            t.split(';')
+                .next()
+                .unwrap_or("")
+                .trim()
+                .to_ascii_lowercase()
+        });
     let (mut wants_async, mut named_sync) = (false, false);
     for t in tokens.by_ref() {
         match t.as_str() {
@@ -216,9 +263,13 @@ pub async fn execute(
     let control = Arc::new(Control::new());
     // Dropped with this future when the client goes away or the request times out.
     let mut guard = CancelOnDrop::new(control.clone());
-    let (depth, st, p) = (state.config().max_json_depth, state.clone(), process.clone());
+    let (depth, st, p) = (
+        state.config().max_json_depth,
+        state.clone(),
+        process.clone(),
+    );
     let (mode, prepared) = state
-        .compute(control.clone(), move |_| {
+        .decode(move || {
             body::check_depth(&body, depth)?;
             p.prepare(&body, &st)
         })
@@ -230,25 +281,48 @@ pub async fn execute(
     }
     let budget = state.config().sync_budget;
     if prepared.estimated_cost() > budget {
-        return Err(ApiError::SyncTooCostly { cost: prepared.estimated_cost(), budget });
+        return Err(ApiError::SyncTooCostly {
+            cost: prepared.estimated_cost(),
+            budget,
+        });
     }
     let cells = prepared.cells();
     let st = state.clone();
-    let result = state.compute(control, move |c| prepared.run(&st, c)).await;
-    if matches!(result, Err(ApiError::Cancelled)) {
-        state.metrics().add_cancelled();
-    }
-    let raw = result?;
+    let raw = state
+        .compute(control, move |c| counted(prepared.run(&st, c), &st))
+        .await?;
     guard.disarm();
     state.metrics().add_cells(cells);
-    let mut resp = (StatusCode::OK, [(header::CONTENT_TYPE, HeaderValue::from_static(JSON))], shape(mode, process.output(), raw)).into_response();
+    let mut resp = (
+        StatusCode::OK,
+        [(header::CONTENT_TYPE, HeaderValue::from_static(JSON))],
+        shape(mode, process.output(), raw),
+    )
+        .into_response();
     if named_sync {
-        resp.headers_mut().insert("preference-applied", HeaderValue::from_static("respond-sync"));
+        resp.headers_mut().insert(
+            "preference-applied",
+            HeaderValue::from_static("respond-sync"),
+        );
     }
     Ok(resp)
 }
 
-fn start_job(state: &AppState, process: Arc<dyn Process>, mode: ResponseMode, prepared: Box<dyn Prepared>, control: Arc<Control>) -> Result<Response, ApiError> {
+/// Counts a computation that stopped on its cancelled `Control` while running.
+fn counted<T>(result: Result<T, ApiError>, state: &AppState) -> Result<T, ApiError> {
+    if matches!(result, Err(ApiError::Cancelled)) {
+        state.metrics().add_cancelled();
+    }
+    result
+}
+
+fn start_job(
+    state: &AppState,
+    process: Arc<dyn Process>,
+    mode: ResponseMode,
+    prepared: Box<dyn Prepared>,
+    control: Arc<Control>,
+) -> Result<Response, ApiError> {
     let id = uuid::Uuid::new_v4().to_string();
     let job = Job::new(id.clone(), process.id().to_string(), control.clone());
     let info = status_info(&job);
@@ -261,13 +335,15 @@ fn start_job(state: &AppState, process: Arc<dyn Process>, mode: ResponseMode, pr
             j.message = "computing".into();
             j.started = Some(SystemTime::now());
         });
-        prepared.run(&st, c)
+        counted(prepared.run(&st, c), &st)
     });
     let rx = match submitted {
         Ok(rx) => rx,
         Err(_) => {
             state.store().remove(&id);
-            return Err(ApiError::Busy { retry_after: state.config().retry_after });
+            return Err(ApiError::Busy {
+                retry_after: state.config().retry_after,
+            });
         }
     };
     let (st, job_id, output) = (state.clone(), id.clone(), process.output());
@@ -277,22 +353,48 @@ fn start_job(state: &AppState, process: Arc<dyn Process>, mode: ResponseMode, pr
         let (state, message, outcome) = match finished {
             Ok(Finished::Done(Ok(raw))) => {
                 st.metrics().add_cells(cells);
-                (JobState::Successful, "done".to_string(), Outcome::Results(shape(mode, output, raw)))
+                (
+                    JobState::Successful,
+                    "done".to_string(),
+                    Outcome::Results(shape(mode, output, raw)),
+                )
             }
             Ok(Finished::Done(Err(ApiError::Cancelled))) | Ok(Finished::Cancelled) => {
-                st.metrics().add_cancelled();
                 let e = ApiError::Cancelled;
-                (JobState::Dismissed, "cancelled".to_string(), Outcome::Failure { status: e.status().as_u16(), body: e.to_body() })
+                (
+                    JobState::Dismissed,
+                    "cancelled".to_string(),
+                    Outcome::Failure {
+                        status: e.status().as_u16(),
+                        body: e.to_body(),
+                    },
+                )
             }
             Ok(Finished::Done(Err(e))) => {
                 if let ApiError::Internal { cause } = &e {
                     tracing::error!(job = %job_id, %cause, "job failed");
                 }
-                (JobState::Failed, e.problem().detail, Outcome::Failure { status: e.status().as_u16(), body: e.to_body() })
+                (
+                    JobState::Failed,
+                    e.problem().detail,
+                    Outcome::Failure {
+                        status: e.status().as_u16(),
+                        body: e.to_body(),
+                    },
+                )
             }
             Ok(Finished::Panicked(_)) | Err(_) => {
-                let e = ApiError::Internal { cause: "the computation panicked".into() };
-                (JobState::Failed, e.problem().detail, Outcome::Failure { status: e.status().as_u16(), body: e.to_body() })
+                let e = ApiError::Internal {
+                    cause: "the computation panicked".into(),
+                };
+                (
+                    JobState::Failed,
+                    e.problem().detail,
+                    Outcome::Failure {
+                        status: e.status().as_u16(),
+                        body: e.to_body(),
+                    },
+                )
             }
         };
         st.store().update(&job_id, &mut |j| {
@@ -308,8 +410,16 @@ fn start_job(state: &AppState, process: Arc<dyn Process>, mode: ResponseMode, pr
     });
     let mut resp = (StatusCode::CREATED, Json(info)).into_response();
     let h = resp.headers_mut();
-    h.insert(header::LOCATION, HeaderValue::from_str(&format!("/jobs/{id}")).map_err(|e| ApiError::Internal { cause: e.to_string() })?);
-    h.insert("preference-applied", HeaderValue::from_static("respond-async"));
+    h.insert(
+        header::LOCATION,
+        HeaderValue::from_str(&format!("/jobs/{id}")).map_err(|e| ApiError::Internal {
+            cause: e.to_string(),
+        })?,
+    );
+    h.insert(
+        "preference-applied",
+        HeaderValue::from_static("respond-async"),
+    );
     Ok(resp)
 }
 
@@ -341,9 +451,19 @@ fn rfc3339(t: SystemTime) -> String {
 }
 
 pub fn status_info(job: &Job) -> StatusInfo {
-    let mut links = vec![link(format!("/jobs/{}", job.id), "self", JSON, "this status")];
+    let mut links = vec![link(
+        format!("/jobs/{}", job.id),
+        "self",
+        JSON,
+        "this status",
+    )];
     if job.state == JobState::Successful {
-        links.push(link(format!("/jobs/{}/results", job.id), format!("{OGC_REL}/results"), JSON, "results"));
+        links.push(link(
+            format!("/jobs/{}/results", job.id),
+            format!("{OGC_REL}/results"),
+            JSON,
+            "results",
+        ));
     }
     StatusInfo {
         job_id: job.id.clone(),
@@ -370,15 +490,29 @@ pub struct JobList {
 }
 
 fn values<'a>(pairs: &'a [(String, String)], name: &str) -> Vec<&'a str> {
-    pairs.iter().filter(|(k, _)| k == name).flat_map(|(_, v)| v.split(',')).map(str::trim).filter(|v| !v.is_empty()).collect()
+    pairs
+        .iter()
+        .filter(|(k, _)| k == name)
+        .flat_map(|(_, v)| v.split(','))
+        .map(str::trim)
+        .filter(|v| !v.is_empty())
+        .collect()
 }
 
-fn number(pairs: &[(String, String)], name: &str, default: usize, max: usize) -> Result<usize, ApiError> {
+fn number(
+    pairs: &[(String, String)],
+    name: &str,
+    default: usize,
+    max: usize,
+) -> Result<usize, ApiError> {
     match values(pairs, name).last() {
         None => Ok(default),
         Some(v) => match v.parse::<usize>() {
             Ok(n) if n <= max => Ok(n),
-            _ => Err(ApiError::BadQuery { parameter: name.into(), detail: format!("`{v}` is not a whole number from 0 to {max}") }),
+            _ => Err(ApiError::BadQuery {
+                parameter: name.into(),
+                detail: format!("`{v}` is not a whole number from 0 to {max}"),
+            }),
         },
     }
 }
@@ -390,19 +524,38 @@ fn number(pairs: &[(String, String)], name: &str, default: usize, max: usize) ->
            ("offset" = Option<usize>, Query, description = "jobs to skip (paging links carry it)")),
     responses((status = 200, description = "the jobs held, newest first", body = JobList),
               (status = 400, description = "bad query parameter", body = Problem, content_type = "application/problem+json")))]
-pub async fn jobs(State(state): State<AppState>, RawQuery(query): RawQuery) -> Result<Json<JobList>, ApiError> {
+pub async fn jobs(
+    State(state): State<AppState>,
+    RawQuery(query): RawQuery,
+) -> Result<Json<JobList>, ApiError> {
     let pairs: Vec<(String, String)> = serde_urlencoded::from_str(query.as_deref().unwrap_or(""))
-        .map_err(|e| ApiError::BadQuery { parameter: "query".into(), detail: e.to_string() })?;
-    let mut filter = JobFilter { processes: values(&pairs, "processID").into_iter().map(String::from).collect(), states: Vec::new() };
+        .map_err(|e| ApiError::BadQuery {
+        parameter: "query".into(),
+        detail: e.to_string(),
+    })?;
+    let mut filter = JobFilter {
+        processes: values(&pairs, "processID")
+            .into_iter()
+            .map(String::from)
+            .collect(),
+        states: Vec::new(),
+    };
     for s in values(&pairs, "status") {
-        filter.states.push(JobState::parse(s).ok_or_else(|| ApiError::BadQuery {
-            parameter: "status".into(),
-            detail: format!("`{s}` is not a status: use accepted, running, successful, failed or dismissed"),
-        })?);
+        filter
+            .states
+            .push(JobState::parse(s).ok_or_else(|| ApiError::BadQuery {
+                parameter: "status".into(),
+                detail: format!(
+                    "`{s}` is not a status: use accepted, running, successful, failed or dismissed"
+                ),
+            })?);
     }
     for t in values(&pairs, "type") {
         if t != "process" {
-            return Err(ApiError::BadQuery { parameter: "type".into(), detail: format!("`{t}` is not a job type here: the only one is `process`") });
+            return Err(ApiError::BadQuery {
+                parameter: "type".into(),
+                detail: format!("`{t}` is not a job type here: the only one is `process`"),
+            });
         }
     }
     let limit = number(&pairs, "limit", DEFAULT_PAGE, MAX_PAGE)?.max(1);
@@ -424,13 +577,24 @@ pub async fn jobs(State(state): State<AppState>, RawQuery(query): RawQuery) -> R
         links.push(link(href(offset + limit), "next", JSON, "next page"));
     }
     if offset > 0 {
-        links.push(link(href(offset.saturating_sub(limit)), "prev", JSON, "previous page"));
+        links.push(link(
+            href(offset.saturating_sub(limit)),
+            "prev",
+            JSON,
+            "previous page",
+        ));
     }
-    Ok(Json(JobList { jobs: page.iter().map(status_info).collect(), number_matched: matched, links }))
+    Ok(Json(JobList {
+        jobs: page.iter().map(status_info).collect(),
+        number_matched: matched,
+        links,
+    }))
 }
 
 fn urlencode(v: &str) -> String {
-    serde_urlencoded::to_string([("", v)]).map(|s| s[1..].to_string()).unwrap_or_default()
+    serde_urlencoded::to_string([("", v)])
+        .map(|s| s[1..].to_string())
+        .unwrap_or_default()
 }
 
 /// A strong validator of a status body.
@@ -457,20 +621,37 @@ fn matches_etag(headers: &HeaderMap, etag: &str) -> bool {
                    headers(("ETag" = String, description = "changes whenever the status does"))),
               (status = 304, description = "unchanged since the given ETag"),
               (status = 404, description = "no such job", body = Problem, content_type = "application/problem+json")))]
-pub async fn job(State(state): State<AppState>, Path(id): Path<String>, headers: HeaderMap) -> Result<Response, ApiError> {
+pub async fn job(
+    State(state): State<AppState>,
+    Path(id): Path<String>,
+    headers: HeaderMap,
+) -> Result<Response, ApiError> {
     let job = state.store().get(&id).ok_or(ApiError::NoSuchJob { id })?;
-    let body = serde_json::to_vec(&status_info(&job)).map_err(|e| ApiError::Internal { cause: e.to_string() })?;
+    let body = serde_json::to_vec(&status_info(&job)).map_err(|e| ApiError::Internal {
+        cause: e.to_string(),
+    })?;
     let etag = etag_of(&body);
-    let etag_value = HeaderValue::from_str(&etag).map_err(|e| ApiError::Internal { cause: e.to_string() })?;
+    let etag_value = HeaderValue::from_str(&etag).map_err(|e| ApiError::Internal {
+        cause: e.to_string(),
+    })?;
     let mut resp = if matches_etag(&headers, &etag) {
         StatusCode::NOT_MODIFIED.into_response()
     } else {
-        (StatusCode::OK, [(header::CONTENT_TYPE, HeaderValue::from_static(JSON))], body).into_response()
+        (
+            StatusCode::OK,
+            [(header::CONTENT_TYPE, HeaderValue::from_static(JSON))],
+            body,
+        )
+            .into_response()
     };
     resp.headers_mut().insert(header::ETAG, etag_value);
-    resp.headers_mut().insert(header::CACHE_CONTROL, HeaderValue::from_static("no-cache"));
+    resp.headers_mut()
+        .insert(header::CACHE_CONTROL, HeaderValue::from_static("no-cache"));
     if !job.state.is_finished() {
-        resp.headers_mut().insert(header::RETRY_AFTER, HeaderValue::from(state.config().retry_after));
+        resp.headers_mut().insert(
+            header::RETRY_AFTER,
+            HeaderValue::from(state.config().retry_after),
+        );
     }
     Ok(resp)
 }
@@ -480,15 +661,37 @@ pub async fn job(State(state): State<AppState>, Path(id): Path<String>, headers:
     responses((status = 200, description = "the results, shaped as the execute request asked", body = Object),
               (status = 404, description = "no such job, or result not ready", body = Problem, content_type = "application/problem+json"),
               (status = 500, description = "the job failed: its exception document", body = Problem, content_type = "application/problem+json")))]
-pub async fn results(State(state): State<AppState>, Path(id): Path<String>) -> Result<Response, ApiError> {
-    let job = state.store().get(&id).ok_or_else(|| ApiError::NoSuchJob { id: id.clone() })?;
+pub async fn results(
+    State(state): State<AppState>,
+    Path(id): Path<String>,
+) -> Result<Response, ApiError> {
+    let job = state
+        .store()
+        .get(&id)
+        .ok_or_else(|| ApiError::NoSuchJob { id: id.clone() })?;
     match job.outcome {
-        Some(Outcome::Results(body)) => Ok((StatusCode::OK, [(header::CONTENT_TYPE, HeaderValue::from_static(JSON))], body).into_response()),
+        Some(Outcome::Results(body)) => Ok((
+            StatusCode::OK,
+            [(header::CONTENT_TYPE, HeaderValue::from_static(JSON))],
+            body,
+        )
+            .into_response()),
         Some(Outcome::Failure { status, body }) => {
             let status = StatusCode::from_u16(status).unwrap_or(StatusCode::INTERNAL_SERVER_ERROR);
-            Ok((status, [(header::CONTENT_TYPE, HeaderValue::from_static(super::problem::PROBLEM_JSON))], Body::from(body)).into_response())
+            Ok((
+                status,
+                [(
+                    header::CONTENT_TYPE,
+                    HeaderValue::from_static(super::problem::PROBLEM_JSON),
+                )],
+                Body::from(body),
+            )
+                .into_response())
         }
-        None => Err(ApiError::ResultNotReady { id, state: job.state.as_str() }),
+        None => Err(ApiError::ResultNotReady {
+            id,
+            state: job.state.as_str(),
+        }),
     }
 }
 
@@ -496,8 +699,14 @@ pub async fn results(State(state): State<AppState>, Path(id): Path<String>) -> R
     params(("jobId" = String, Path, description = "job id")),
     responses((status = 200, description = "dismissed: the computation is cancelled and the job forgotten", body = StatusInfo),
               (status = 404, description = "no such job", body = Problem, content_type = "application/problem+json")))]
-pub async fn dismiss(State(state): State<AppState>, Path(id): Path<String>) -> Result<Json<StatusInfo>, ApiError> {
-    let mut job = state.store().remove(&id).ok_or(ApiError::NoSuchJob { id })?;
+pub async fn dismiss(
+    State(state): State<AppState>,
+    Path(id): Path<String>,
+) -> Result<Json<StatusInfo>, ApiError> {
+    let mut job = state
+        .store()
+        .remove(&id)
+        .ok_or(ApiError::NoSuchJob { id })?;
     job.control.cancel();
     job.state = JobState::Dismissed;
     job.message = "dismissed".into();

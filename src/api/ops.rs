@@ -21,7 +21,9 @@ pub struct Health {
 
 #[utoipa::path(get, path = "/healthz", tag = "operations", responses((status = 200, description = "the process is alive", body = Health)))]
 pub async fn healthz() -> Json<Health> {
-    Json(Health { status: "alive".into() })
+    Json(Health {
+        status: "alive".into(),
+    })
 }
 
 #[derive(Serialize, ToSchema)]
@@ -51,20 +53,49 @@ pub async fn readyz(State(state): State<AppState>) -> Result<Json<Readiness>, Ap
 #[utoipa::path(get, path = "/metrics", tag = "operations", responses((status = 200, description = "Prometheus text exposition", body = String, content_type = "text/plain")))]
 pub async fn metrics(State(state): State<AppState>) -> Response {
     let text = state.metrics().render(&state);
-    ([(header::CONTENT_TYPE, HeaderValue::from_static("text/plain; version=0.0.4; charset=utf-8"))], text).into_response()
+    (
+        [(
+            header::CONTENT_TYPE,
+            HeaderValue::from_static("text/plain; version=0.0.4; charset=utf-8"),
+        )],
+        text,
+    )
+        .into_response()
 }
 
 #[utoipa::path(get, path = "/openapi.json", tag = "operations", responses((status = 200, description = "this API's OpenAPI 3.1 document", body = Object, content_type = "application/vnd.oai.openapi+json;version=3.1")))]
 pub async fn openapi() -> Response {
-    ([(header::CONTENT_TYPE, HeaderValue::from_static(OPENAPI_MEDIA_TYPE))], super::openapi_json()).into_response()
+    (
+        [(
+            header::CONTENT_TYPE,
+            HeaderValue::from_static(OPENAPI_MEDIA_TYPE),
+        )],
+        super::openapi_json(),
+    )
+        .into_response()
 }
 
 #[utoipa::path(get, path = "/demo", tag = "demo", responses((status = 200, description = "the demo page", body = String, content_type = "text/html")))]
 pub async fn demo_page() -> Response {
-    ([(header::CONTENT_TYPE, HeaderValue::from_static("text/html; charset=utf-8"))], DEMO_PAGE).into_response()
+    (
+        [(
+            header::CONTENT_TYPE,
+            HeaderValue::from_static("text/html; charset=utf-8"),
+        )],
+        DEMO_PAGE,
+    )
+        .into_response()
 }
 
 #[utoipa::path(get, path = "/demo/valley.json", tag = "demo", responses((status = 200, description = "the demo scenario: a request document", body = Object)))]
 pub async fn demo_scenario() -> Response {
-    (StatusCode::OK, [(header::CONTENT_TYPE, HeaderValue::from_static("application/json"))], DEMO_SCENARIO).into_response()
+    (
+        StatusCode::OK,
+        [(
+            header::CONTENT_TYPE,
+            HeaderValue::from_static("application/json"),
+        )],
+        DEMO_SCENARIO,
+    )
+        .into_response()
 }

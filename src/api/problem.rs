@@ -32,44 +32,86 @@ pub struct Problem {
 #[derive(Clone, Debug, PartialEq)]
 pub enum ApiError {
     /// A field's value is wrong (a probability above 1, a cell outside the raster, ...).
-    InvalidInput { pointer: String, detail: String },
+    InvalidInput {
+        pointer: String,
+        detail: String,
+    },
     /// The body is not JSON, or not the JSON this endpoint takes.
-    MalformedJson { pointer: String, detail: String },
+    MalformedJson {
+        pointer: String,
+        detail: String,
+    },
     /// The JSON nests deeper than the configured limit.
-    NestingTooDeep { limit: usize, offset: usize },
+    NestingTooDeep {
+        limit: usize,
+        offset: usize,
+    },
     /// A size limit (body bytes, cells, zones, zone cells, planned cost) was exceeded.
-    TooLarge { pointer: String, detail: String },
+    TooLarge {
+        pointer: String,
+        detail: String,
+    },
     /// A sync request whose planned cost exceeds the sync budget.
-    SyncTooCostly { cost: f64, budget: f64 },
-    UnsupportedMediaType { got: String },
-    NoSuchProcess { id: String },
-    NoSuchJob { id: String },
-    ResultNotReady { id: String, state: &'static str },
-    UnknownRaster { pointer: String, reference: String },
-    NotFound { path: String },
+    SyncTooCostly {
+        cost: f64,
+        budget: f64,
+    },
+    UnsupportedMediaType {
+        got: String,
+    },
+    NoSuchProcess {
+        id: String,
+    },
+    NoSuchJob {
+        id: String,
+    },
+    ResultNotReady {
+        id: String,
+        state: &'static str,
+    },
+    UnknownRaster {
+        pointer: String,
+        reference: String,
+    },
+    NotFound {
+        path: String,
+    },
     MethodNotAllowed,
-    BadQuery { parameter: String, detail: String },
+    BadQuery {
+        parameter: String,
+        detail: String,
+    },
     /// The compute queue is full.
-    Busy { retry_after: u64 },
+    Busy {
+        retry_after: u64,
+    },
     /// The request ran past the configured time limit.
-    Timeout { seconds: f64 },
+    Timeout {
+        seconds: f64,
+    },
     ShuttingDown,
     /// The computation was cancelled (dismissed, client gone, timed out, shutdown).
     Cancelled,
     /// Anything else: the detail stays generic, the cause is logged.
-    Internal { cause: String },
+    Internal {
+        cause: String,
+    },
 }
 
 impl ApiError {
     pub fn status(&self) -> StatusCode {
         use ApiError::*;
         match self {
-            InvalidInput { .. } | MalformedJson { .. } | NestingTooDeep { .. } | UnknownRaster { .. } | BadQuery { .. } => {
-                StatusCode::BAD_REQUEST
-            }
+            InvalidInput { .. }
+            | MalformedJson { .. }
+            | NestingTooDeep { .. }
+            | UnknownRaster { .. }
+            | BadQuery { .. } => StatusCode::BAD_REQUEST,
             TooLarge { .. } | SyncTooCostly { .. } => StatusCode::PAYLOAD_TOO_LARGE,
             UnsupportedMediaType { .. } => StatusCode::UNSUPPORTED_MEDIA_TYPE,
-            NoSuchProcess { .. } | NoSuchJob { .. } | ResultNotReady { .. } | NotFound { .. } => StatusCode::NOT_FOUND,
+            NoSuchProcess { .. } | NoSuchJob { .. } | ResultNotReady { .. } | NotFound { .. } => {
+                StatusCode::NOT_FOUND
+            }
             MethodNotAllowed => StatusCode::METHOD_NOT_ALLOWED,
             Busy { .. } | ShuttingDown | Cancelled => StatusCode::SERVICE_UNAVAILABLE,
             Timeout { .. } => StatusCode::GATEWAY_TIMEOUT,
@@ -161,7 +203,13 @@ impl ApiError {
                 None,
             ),
         };
-        Problem { kind, title: title.to_string(), status: self.status().as_u16(), detail, pointer }
+        Problem {
+            kind,
+            title: title.to_string(),
+            status: self.status().as_u16(),
+            detail,
+            pointer,
+        }
     }
 
     /// The problem document as bytes, for storing in a failed job.
@@ -173,9 +221,15 @@ impl ApiError {
     pub fn from_decode(err: DecodeError, base: &str) -> ApiError {
         let pointer = format!("{base}{}", err.pointer);
         if err.too_large {
-            ApiError::TooLarge { pointer, detail: err.detail }
+            ApiError::TooLarge {
+                pointer,
+                detail: err.detail,
+            }
         } else {
-            ApiError::InvalidInput { pointer, detail: err.detail }
+            ApiError::InvalidInput {
+                pointer,
+                detail: err.detail,
+            }
         }
     }
 }
@@ -198,13 +252,20 @@ impl IntoResponse for ApiError {
         }
         let status = self.status();
         let body = self.to_body();
-        let mut resp = (status, [(header::CONTENT_TYPE, HeaderValue::from_static(PROBLEM_JSON))], body).into_response();
+        let mut resp = (
+            status,
+            [(header::CONTENT_TYPE, HeaderValue::from_static(PROBLEM_JSON))],
+            body,
+        )
+            .into_response();
         match &self {
             ApiError::Busy { retry_after } => {
-                resp.headers_mut().insert(header::RETRY_AFTER, HeaderValue::from(*retry_after));
+                resp.headers_mut()
+                    .insert(header::RETRY_AFTER, HeaderValue::from(*retry_after));
             }
             ApiError::ShuttingDown => {
-                resp.headers_mut().insert(header::RETRY_AFTER, HeaderValue::from(5u64));
+                resp.headers_mut()
+                    .insert(header::RETRY_AFTER, HeaderValue::from(5u64));
             }
             _ => {}
         }

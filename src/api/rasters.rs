@@ -1,8 +1,6 @@
 //! Rasters by reference: `POST /rasters` keeps a raster under its content hash so execute
 //! requests can send `{"ref": "sha256:..."}` instead of the values.
 
-use std::sync::Arc;
-
 use axum::extract::rejection::BytesRejection;
 use axum::extract::{Path, State};
 use axum::http::{header, HeaderMap, HeaderValue, StatusCode};
@@ -17,7 +15,7 @@ use super::cache::is_hash;
 use super::problem::{ApiError, Problem};
 use super::state::AppState;
 use super::wire::{self, RasterSpec};
-use crate::engine::{Control, Raster};
+use crate::engine::Raster;
 
 /// What the service holds for a raster.
 #[derive(Serialize, ToSchema)]
@@ -34,7 +32,13 @@ pub struct RasterInfo {
 }
 
 fn info(reference: String, r: &Raster) -> RasterInfo {
-    RasterInfo { reference, width: r.width(), height: r.height(), valid_cells: r.stats().valid, sum_p: r.stats().sum_p }
+    RasterInfo {
+        reference,
+        width: r.width(),
+        height: r.height(),
+        valid_cells: r.stats().valid,
+        sum_p: r.stats().sum_p,
+    }
 }
 
 #[utoipa::path(post, path = "/rasters", tag = "rasters",
@@ -43,30 +47,60 @@ fn info(reference: String, r: &Raster) -> RasterInfo {
               (status = 400, description = "invalid raster", body = Problem, content_type = "application/problem+json"),
               (status = 413, description = "too large", body = Problem, content_type = "application/problem+json"),
               (status = 415, description = "not JSON", body = Problem, content_type = "application/problem+json")))]
-pub async fn post_raster(State(state): State<AppState>, headers: HeaderMap, body: Result<Bytes, BytesRejection>) -> Result<Response, ApiError> {
+pub async fn post_raster(
+    State(state): State<AppState>,
+    headers: HeaderMap,
+    body: Result<Bytes, BytesRejection>,
+) -> Result<Response, ApiError> {
     body::require_json(&headers)?;
     let body = body.map_err(|r| body::rejection(r, state.config().max_body_bytes))?;
     let st = state.clone();
     let (hash, raster) = state
-        .compute(Arc::new(Control::new()), move |_| {
+        .decode(move || {
             body::check_depth(&body, st.config().max_json_depth)?;
             let spec: RasterSpec = body::parse(&body)?;
-            let raster = wire::decode_raster(spec, &st.config().limits()).map_err(|e| ApiError::from_decode(e, ""))?;
+            let raster = wire::decode_raster(spec, &st.config().limits()).map_err(|mut e| {
+                // The body is the raster itself: drop the request document's `/raster`.
+                e.pointer = e
+                    .pointer
+                    .strip_prefix("/raster")
+                    .unwrap_or(&e.pointer)
+                    .to_string();
+                ApiError::from_decode(e, "")
+            })?;
             Ok(st.caches().keep_raster(raster))
         })
         .await?;
-    let location = HeaderValue::from_str(&format!("/rasters/{hash}")).map_err(|e| ApiError::Internal { cause: e.to_string() })?;
-    Ok((StatusCode::CREATED, [(header::LOCATION, location)], Json(info(hash, &raster))).into_response())
+    let location =
+        HeaderValue::from_str(&format!("/rasters/{hash}")).map_err(|e| ApiError::Internal {
+            cause: e.to_string(),
+        })?;
+    Ok((
+        StatusCode::CREATED,
+        [(header::LOCATION, location)],
+        Json(info(hash, &raster)),
+    )
+        .into_response())
 }
 
 #[utoipa::path(get, path = "/rasters/{ref}", tag = "rasters",
     params(("ref" = String, Path, description = "`sha256:...` as returned by POST /rasters")),
     responses((status = 200, description = "held", body = RasterInfo),
               (status = 404, description = "not held", body = Problem, content_type = "application/problem+json")))]
-pub async fn get_raster(State(state): State<AppState>, Path(reference): Path<String>) -> Result<Json<RasterInfo>, ApiError> {
+pub async fn get_raster(
+    State(state): State<AppState>,
+    Path(reference): Path<String>,
+) -> Result<Json<RasterInfo>, ApiError> {
     if !is_hash(&reference) {
-        return Err(ApiError::NotFound { path: format!("/rasters/{reference}") });
+        return Err(ApiError::NotFound {
+            path: format!("/rasters/{reference}"),
+        });
     }
-    let raster = state.caches().raster(&reference).ok_or_else(|| ApiError::NotFound { path: format!("/rasters/{reference}") })?;
+    let raster = state
+        .caches()
+        .raster(&reference)
+        .ok_or_else(|| ApiError::NotFound {
+            path: format!("/rasters/{reference}"),
+        })?;
     Ok(Json(info(reference, &raster)))
 }

@@ -19,14 +19,20 @@ const SWEEP_EVERY: Duration = Duration::from_secs(5);
 pub async fn serve(config: Config) -> Result<(), String> {
     let bind = config.bind;
     let state = AppState::new(config)?;
-    let listener = TcpListener::bind(bind).await.map_err(|e| format!("cannot listen on {bind}: {e}"))?;
+    let listener = TcpListener::bind(bind)
+        .await
+        .map_err(|e| format!("cannot listen on {bind}: {e}"))?;
     let addr = listener.local_addr().map_err(|e| e.to_string())?;
     tracing::info!(%addr, threads = state.pool().stats().threads, "zonetally listening");
     serve_on(listener, state, shutdown_signal()).await
 }
 
 /// Serves `state` on `listener` until `signal` completes, then shuts down gracefully.
-pub async fn serve_on(listener: TcpListener, state: AppState, signal: impl Future<Output = ()> + Send + 'static) -> Result<(), String> {
+pub async fn serve_on(
+    listener: TcpListener,
+    state: AppState,
+    signal: impl Future<Output = ()> + Send + 'static,
+) -> Result<(), String> {
     let sweeper = {
         let state = state.clone();
         tokio::spawn(async move {
@@ -49,7 +55,11 @@ pub async fn serve_on(listener: TcpListener, state: AppState, signal: impl Futur
         }
     };
     let app = super::router(state);
-    let mut server = tokio::spawn(async move { axum::serve(listener, app).with_graceful_shutdown(graceful).await });
+    let mut server = tokio::spawn(async move {
+        axum::serve(listener, app)
+            .with_graceful_shutdown(graceful)
+            .await
+    });
     let result = tokio::select! {
         r = &mut server => r,
         _ = notify.notified() => match tokio::time::timeout(grace, &mut server).await {

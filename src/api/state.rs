@@ -81,10 +81,27 @@ impl AppState {
         self.inner.shutting_down.store(true, Ordering::Relaxed);
         let message = "the service shut down before this job finished: submit it again";
         let failure = ApiError::ShuttingDown;
-        self.inner.store.fail_unfinished(message, &|_| crate::jobs::Outcome::Failure {
-            status: failure.status().as_u16(),
-            body: failure.to_body(),
-        })
+        self.inner
+            .store
+            .fail_unfinished(message, &|_| crate::jobs::Outcome::Failure {
+                status: failure.status().as_u16(),
+                body: failure.to_body(),
+            })
+    }
+
+    /// Parses and validates a body on the runtime's blocking threads (not the compute pool, whose
+    /// queue bounds the kernels only, and not the async workers).
+    pub async fn decode<T, F>(&self, work: F) -> Result<T, ApiError>
+    where
+        T: Send + 'static,
+        F: FnOnce() -> Result<T, ApiError> + Send + 'static,
+    {
+        match tokio::task::spawn_blocking(work).await {
+            Ok(r) => r,
+            Err(e) => Err(ApiError::Internal {
+                cause: format!("decoding failed: {e}"),
+            }),
+        }
     }
 
     /// Runs `work` on the compute pool and waits for it; never computes on the caller's thread.
@@ -97,12 +114,18 @@ impl AppState {
             .inner
             .pool
             .submit(control, work)
-            .map_err(|_| ApiError::Busy { retry_after: self.inner.config.retry_after })?;
+            .map_err(|_| ApiError::Busy {
+                retry_after: self.inner.config.retry_after,
+            })?;
         match rx.await {
             Ok(Finished::Done(r)) => r,
             Ok(Finished::Cancelled) => Err(ApiError::Cancelled),
-            Ok(Finished::Panicked(cause)) => Err(ApiError::Internal { cause: format!("computation panicked: {cause}") }),
-            Err(_) => Err(ApiError::Internal { cause: "the compute pool dropped a computation".into() }),
+            Ok(Finished::Panicked(cause)) => Err(ApiError::Internal {
+                cause: format!("computation panicked: {cause}"),
+            }),
+            Err(_) => Err(ApiError::Internal {
+                cause: "the compute pool dropped a computation".into(),
+            }),
         }
     }
 }

@@ -9,7 +9,8 @@ use serde::{Deserialize, Serialize};
 use utoipa::ToSchema;
 
 use crate::engine::{
-    self, EngineError, Evaluation, Raster, Settings, TotalCheck, Zone, ZoneSummary, DEFAULT_LEVEL, DEFAULT_TOLERANCE,
+    self, EngineError, Evaluation, Raster, Settings, TotalCheck, Zone, ZoneSummary, DEFAULT_LEVEL,
+    DEFAULT_TOLERANCE,
 };
 
 /// The raster as sent: row-major values, row 0 at the top; `null` or the `nodata` value marks
@@ -150,7 +151,11 @@ pub struct Limits {
 
 impl Default for Limits {
     fn default() -> Self {
-        Limits { max_cells: 100_000_000, max_zones: 1_000_000, max_zone_cells: 400_000_000 }
+        Limits {
+            max_cells: 100_000_000,
+            max_zones: 1_000_000,
+            max_zone_cells: 400_000_000,
+        }
     }
 }
 
@@ -171,10 +176,18 @@ impl std::fmt::Display for DecodeError {
 
 impl DecodeError {
     pub fn at(pointer: impl Into<String>, detail: impl Into<String>) -> DecodeError {
-        DecodeError { pointer: pointer.into(), detail: detail.into(), too_large: false }
+        DecodeError {
+            pointer: pointer.into(),
+            detail: detail.into(),
+            too_large: false,
+        }
     }
     pub fn limit(pointer: impl Into<String>, detail: impl Into<String>) -> DecodeError {
-        DecodeError { pointer: pointer.into(), detail: detail.into(), too_large: true }
+        DecodeError {
+            pointer: pointer.into(),
+            detail: detail.into(),
+            too_large: true,
+        }
     }
 }
 
@@ -220,21 +233,36 @@ pub fn decode_raster(spec: RasterSpec, limits: &Limits) -> Result<Raster, Decode
         })
         .collect();
     Raster::new(spec.width, spec.height, values).map_err(|e| match e {
-        EngineError::InvalidValue { cell, detail } => DecodeError::at(format!("/raster/values/{cell}"), detail),
-        EngineError::InvalidRaster(d) if d.contains("values were given") => DecodeError::at("/raster/values", d),
+        EngineError::InvalidValue { cell, detail } => {
+            DecodeError::at(format!("/raster/values/{cell}"), detail)
+        }
+        EngineError::InvalidRaster(d) if d.contains("values were given") => {
+            DecodeError::at("/raster/values", d)
+        }
         other => DecodeError::at("/raster", other.to_string()),
     })
 }
 
 /// Decodes the zones against their raster.
-pub fn decode_zones(specs: Vec<ZoneSpec>, raster: &Raster, limits: &Limits) -> Result<Vec<Zone>, DecodeError> {
+pub fn decode_zones(
+    specs: Vec<ZoneSpec>,
+    raster: &Raster,
+    limits: &Limits,
+) -> Result<Vec<Zone>, DecodeError> {
     if specs.is_empty() {
-        return Err(DecodeError::at("/zones", "the zone list is empty: give at least one zone"));
+        return Err(DecodeError::at(
+            "/zones",
+            "the zone list is empty: give at least one zone",
+        ));
     }
     if specs.len() > limits.max_zones {
         return Err(DecodeError::limit(
             "/zones",
-            format!("{} zones exceed this service's limit of {}: send them in several requests", specs.len(), limits.max_zones),
+            format!(
+                "{} zones exceed this service's limit of {}: send them in several requests",
+                specs.len(),
+                limits.max_zones
+            ),
         ));
     }
     let mut budget = limits.max_zone_cells;
@@ -245,11 +273,20 @@ pub fn decode_zones(specs: Vec<ZoneSpec>, raster: &Raster, limits: &Limits) -> R
             (Some(_), Some(_)) => {
                 return Err(DecodeError::at(
                     base,
-                    format!("zone `{}` gives both `cells` and `rect`: give exactly one", spec.id),
+                    format!(
+                        "zone `{}` gives both `cells` and `rect`: give exactly one",
+                        spec.id
+                    ),
                 ))
             }
             (None, None) => {
-                return Err(DecodeError::at(base, format!("zone `{}` gives neither `cells` nor `rect`: give one", spec.id)))
+                return Err(DecodeError::at(
+                    base,
+                    format!(
+                        "zone `{}` gives neither `cells` nor `rect`: give one",
+                        spec.id
+                    ),
+                ))
             }
             (Some(c), None) => c,
             (None, Some(r)) => rect_cells(&spec.id, r, raster, &base)?,
@@ -265,16 +302,20 @@ pub fn decode_zones(specs: Vec<ZoneSpec>, raster: &Raster, limits: &Limits) -> R
         }
         budget -= cells.len() as u64;
         let zone = Zone::new(spec.id, cells, raster).map_err(|e| match e {
-            EngineError::InvalidZone { position: Some(p), detail, .. } => {
-                DecodeError::at(format!("{base}/cells/{p}"), detail)
-            }
+            EngineError::InvalidZone {
+                position: Some(p),
+                detail,
+                ..
+            } => DecodeError::at(format!("{base}/cells/{p}"), detail),
             other => DecodeError::at(format!("{base}/cells"), other.to_string()),
         })?;
         zones.push(zone);
     }
     engine::check_unique_ids(&zones).map_err(|e| {
         let pos = match &e {
-            EngineError::InvalidZone { zone, .. } => zones.iter().rposition(|z| z.id() == zone).unwrap_or(0),
+            EngineError::InvalidZone { zone, .. } => {
+                zones.iter().rposition(|z| z.id() == zone).unwrap_or(0)
+            }
             _ => 0,
         };
         DecodeError::at(format!("/zones/{pos}/id"), e.to_string())
@@ -285,7 +326,13 @@ pub fn decode_zones(specs: Vec<ZoneSpec>, raster: &Raster, limits: &Limits) -> R
 fn rect_cells(id: &str, r: RectSpec, raster: &Raster, base: &str) -> Result<Vec<u32>, DecodeError> {
     let (w, h) = (raster.width(), raster.height());
     if r.rows == 0 || r.cols == 0 {
-        return Err(DecodeError::at(format!("{base}/rect"), format!("zone `{id}` has an empty rect ({}x{}): rows and cols must be at least 1", r.rows, r.cols)));
+        return Err(DecodeError::at(
+            format!("{base}/rect"),
+            format!(
+                "zone `{id}` has an empty rect ({}x{}): rows and cols must be at least 1",
+                r.rows, r.cols
+            ),
+        ));
     }
     let fits = r.row as u64 + r.rows as u64 <= h as u64 && r.col as u64 + r.cols as u64 <= w as u64;
     if !fits {
@@ -300,7 +347,9 @@ fn rect_cells(id: &str, r: RectSpec, raster: &Raster, base: &str) -> Result<Vec<
             ),
         ));
     }
-    Ok((r.row..r.row + r.rows).flat_map(|y| (r.col..r.col + r.cols).map(move |x| y * w + x)).collect())
+    Ok((r.row..r.row + r.rows)
+        .flat_map(|y| (r.col..r.col + r.cols).map(move |x| y * w + x))
+        .collect())
 }
 
 /// Decodes the summaries part.
@@ -313,7 +362,9 @@ pub fn decode_settings(spec: SummariesSpec) -> Result<Settings, DecodeError> {
         spec.pmf.unwrap_or(true),
     )
     .map_err(|e| match e {
-        EngineError::InvalidSetting { field, detail } => DecodeError::at(format!("/summaries/{field}"), detail),
+        EngineError::InvalidSetting { field, detail } => {
+            DecodeError::at(format!("/summaries/{field}"), detail)
+        }
         other => DecodeError::at("/summaries", other.to_string()),
     })
 }
@@ -335,7 +386,12 @@ pub fn decode(req: EvalRequest, limits: &Limits) -> Result<Decoded, DecodeError>
         }
     };
     let zones = decode_zones(req.zones, &raster, limits)?;
-    Ok(Decoded { raster, zones, total: req.evidence.total, settings })
+    Ok(Decoded {
+        raster,
+        zones,
+        total: req.evidence.total,
+        settings,
+    })
 }
 
 /// The pmf of a zone: `values[i]` is P(N = offset + i).
@@ -404,7 +460,10 @@ pub struct ResultsDocument {
 
 impl From<ZoneSummary> for ZoneResult {
     fn from(z: ZoneSummary) -> Self {
-        let pmf = (!z.pmf.is_empty()).then(|| PmfOut { offset: z.offset, values: z.pmf });
+        let pmf = (!z.pmf.is_empty()).then(|| PmfOut {
+            offset: z.offset,
+            values: z.pmf,
+        });
         ZoneResult {
             id: z.id,
             cells: z.cells,
@@ -413,9 +472,20 @@ impl From<ZoneSummary> for ZoneResult {
             sd: z.sd,
             mode: z.mode,
             median: z.median,
-            interval: IntervalOut { level: z.interval.level, lower: z.interval.lower, upper: z.interval.upper },
-            exceedance: z.exceedance.into_iter().map(|(k, p)| ExceedanceOut { k, p }).collect(),
-            prior: PriorOut { mean: z.prior_mean, sd: z.prior_sd },
+            interval: IntervalOut {
+                level: z.interval.level,
+                lower: z.interval.lower,
+                upper: z.interval.upper,
+            },
+            exceedance: z
+                .exceedance
+                .into_iter()
+                .map(|(k, p)| ExceedanceOut { k, p })
+                .collect(),
+            prior: PriorOut {
+                mean: z.prior_mean,
+                sd: z.prior_sd,
+            },
             error_bound: z.error_bound,
         }
     }
@@ -438,7 +508,10 @@ impl From<TotalCheck> for TotalResult {
 
 impl From<Evaluation> for ResultsDocument {
     fn from(e: Evaluation) -> Self {
-        ResultsDocument { zones: e.zones.into_iter().map(Into::into).collect(), total: e.total.into() }
+        ResultsDocument {
+            zones: e.zones.into_iter().map(Into::into).collect(),
+            total: e.total.into(),
+        }
     }
 }
 
@@ -459,4 +532,26 @@ pub struct PosteriorDocument {
     /// Largest certified error bound over the cells.
     pub error_bound: f64,
     pub total: TotalResult,
+}
+
+/// Accuracy settings of a posterior request.
+#[derive(Clone, Debug, Default, Deserialize, ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct PosteriorSummaries {
+    /// Accuracy target (default 1e-13).
+    #[serde(default)]
+    pub tolerance: Option<f64>,
+}
+
+/// The inputs of `cell-posterior`.
+#[derive(Clone, Debug, Deserialize, ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct PosteriorInputs {
+    pub raster: RasterInput,
+    pub evidence: EvidenceSpec,
+    /// Cells to report, row-major indices; all valid cells when absent.
+    #[serde(default)]
+    pub cells: Option<Vec<u32>>,
+    #[serde(default)]
+    pub summaries: PosteriorSummaries,
 }

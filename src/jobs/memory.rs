@@ -63,7 +63,15 @@ impl JobStore for MemoryStore {
         let mut matched: Vec<&Job> = jobs.values().filter(|j| filter.admits(j)).collect();
         matched.sort_by(|a, b| b.created.cmp(&a.created).then_with(|| a.id.cmp(&b.id)));
         let total = matched.len();
-        (matched.into_iter().skip(offset).take(limit).cloned().collect(), total)
+        (
+            matched
+                .into_iter()
+                .skip(offset)
+                .take(limit)
+                .cloned()
+                .collect(),
+            total,
+        )
     }
 
     fn purge_expired(&self, now: Instant) -> usize {

@@ -39,12 +39,21 @@ impl JobState {
         }
     }
     pub fn parse(s: &str) -> Option<JobState> {
-        [JobState::Accepted, JobState::Running, JobState::Successful, JobState::Failed, JobState::Dismissed]
-            .into_iter()
-            .find(|k| k.as_str() == s)
+        [
+            JobState::Accepted,
+            JobState::Running,
+            JobState::Successful,
+            JobState::Failed,
+            JobState::Dismissed,
+        ]
+        .into_iter()
+        .find(|k| k.as_str() == s)
     }
     pub fn is_finished(self) -> bool {
-        matches!(self, JobState::Successful | JobState::Failed | JobState::Dismissed)
+        matches!(
+            self,
+            JobState::Successful | JobState::Failed | JobState::Dismissed
+        )
     }
 }
 

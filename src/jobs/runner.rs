@@ -71,7 +71,12 @@ impl Pool {
             .build()
             .map_err(|e| format!("cannot start the compute pool: {e}"))?;
         let capacity = capacity.max(1);
-        Ok(Pool { pool, permits: Arc::new(Semaphore::new(capacity)), capacity, counters: Arc::default() })
+        Ok(Pool {
+            pool,
+            permits: Arc::new(Semaphore::new(capacity)),
+            capacity,
+            counters: Arc::default(),
+        })
     }
 
     /// The underlying rayon pool (tests use it to occupy the workers).
@@ -95,7 +100,11 @@ impl Pool {
 
     /// Queues `work` on the pool. The receiver yields how it ended; dropping the receiver does
     /// not stop the work (cancel its `Control` for that).
-    pub fn submit<T, F>(&self, control: Arc<Control>, work: F) -> Result<oneshot::Receiver<Finished<T>>, QueueFull>
+    pub fn submit<T, F>(
+        &self,
+        control: Arc<Control>,
+        work: F,
+    ) -> Result<oneshot::Receiver<Finished<T>>, QueueFull>
     where
         T: Send + 'static,
         F: FnOnce(&Control) -> T + Send + 'static,
@@ -104,7 +113,9 @@ impl Pool {
             Ok(p) => p,
             Err(_) => {
                 self.counters.rejected.fetch_add(1, Ordering::Relaxed);
-                return Err(QueueFull { capacity: self.capacity });
+                return Err(QueueFull {
+                    capacity: self.capacity,
+                });
             }
         };
         let (tx, rx) = oneshot::channel();
@@ -123,7 +134,9 @@ impl Pool {
             counters.running.fetch_add(1, Ordering::Relaxed);
             let start = Instant::now();
             let result = catch_unwind(AssertUnwindSafe(|| work(&control)));
-            counters.compute_nanos.fetch_add(start.elapsed().as_nanos() as u64, Ordering::Relaxed);
+            counters
+                .compute_nanos
+                .fetch_add(start.elapsed().as_nanos() as u64, Ordering::Relaxed);
             counters.running.fetch_sub(1, Ordering::Relaxed);
             let finished = match result {
                 Ok(v) => Finished::Done(v),
@@ -153,7 +166,10 @@ pub struct CancelOnDrop {
 
 impl CancelOnDrop {
     pub fn new(control: Arc<Control>) -> CancelOnDrop {
-        CancelOnDrop { control, armed: true }
+        CancelOnDrop {
+            control,
+            armed: true,
+        }
     }
     pub fn disarm(&mut self) {
         self.armed = false;

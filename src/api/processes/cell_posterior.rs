@@ -3,14 +3,18 @@
 use std::sync::Arc;
 
 use bytes::Bytes;
-use serde::Deserialize;
 use serde_json::{json, Value};
-use utoipa::ToSchema;
 
-use super::{check_cost, check_total, engine_error, input, parse_execute, resolve_raster, schema_of, Prepared, Process, ResponseMode};
+use super::{
+    check_cost, check_total, engine_error, input, parse_execute, resolve_raster, schema_of,
+    Prepared, Process, ResponseMode,
+};
 use crate::api::problem::ApiError;
 use crate::api::state::AppState;
-use crate::api::wire::{CellPosteriorOut, EvidenceSpec, PosteriorDocument, RasterInput};
+use crate::api::wire::{
+    CellPosteriorOut, EvidenceSpec, PosteriorDocument, PosteriorInputs, PosteriorSummaries,
+    RasterInput,
+};
 use crate::engine::{self, Control, Raster, Settings, DEFAULT_LEVEL, DEFAULT_TOLERANCE};
 
 /// Multiply-adds charged per valid cell of the raster and per requested cell; the engine's
@@ -20,28 +24,6 @@ const COST_PER_CELL: f64 = 48.0;
 pub struct CellPosteriorProcess;
 
 const OUTPUT: &str = "posterior";
-
-/// Accuracy settings of a posterior request.
-#[derive(Clone, Debug, Default, Deserialize, ToSchema)]
-#[serde(deny_unknown_fields)]
-pub struct PosteriorSummaries {
-    /// Accuracy target (default 1e-13).
-    #[serde(default)]
-    pub tolerance: Option<f64>,
-}
-
-/// The inputs of `cell-posterior`.
-#[derive(Clone, Debug, Deserialize, ToSchema)]
-#[serde(deny_unknown_fields)]
-pub struct PosteriorInputs {
-    pub raster: RasterInput,
-    pub evidence: EvidenceSpec,
-    /// Cells to report, row-major indices; all valid cells when absent.
-    #[serde(default)]
-    pub cells: Option<Vec<u32>>,
-    #[serde(default)]
-    pub summaries: PosteriorSummaries,
-}
 
 impl Process for CellPosteriorProcess {
     fn id(&self) -> &'static str {
@@ -67,12 +49,18 @@ impl Process for CellPosteriorProcess {
     fn outputs(&self) -> Value {
         json!({OUTPUT: {"title": "posterior", "description": "prior and posterior probability of each requested cell, and the total check", "schema": schema_of::<PosteriorDocument>()}})
     }
-    fn prepare(&self, body: &[u8], state: &AppState) -> Result<(ResponseMode, Box<dyn Prepared>), ApiError> {
+    fn prepare(
+        &self,
+        body: &[u8],
+        state: &AppState,
+    ) -> Result<(ResponseMode, Box<dyn Prepared>), ApiError> {
         let (req, mode): (PosteriorInputs, _) = parse_execute(body, OUTPUT)?;
         let tolerance = req.summaries.tolerance.unwrap_or(DEFAULT_TOLERANCE);
-        let settings = Settings::new(DEFAULT_LEVEL, Vec::new(), tolerance, false).map_err(|e| ApiError::InvalidInput {
-            pointer: "/inputs/summaries/tolerance".into(),
-            detail: e.to_string(),
+        let settings = Settings::new(DEFAULT_LEVEL, Vec::new(), tolerance, false).map_err(|e| {
+            ApiError::InvalidInput {
+                pointer: "/inputs/summaries/tolerance".into(),
+                detail: e.to_string(),
+            }
         })?;
         let (hash, raster) = resolve_raster(req.raster, state)?;
         let limit = state.config().max_zone_cells;
@@ -86,10 +74,24 @@ impl Process for CellPosteriorProcess {
             check_cells(cells, &raster)?;
         }
         check_total(&raster, req.evidence.total)?;
-        let requested = req.cells.as_ref().map_or(raster.stats().valid, |c| c.len() as u64);
+        let requested = req
+            .cells
+            .as_ref()
+            .map_or(raster.stats().valid, |c| c.len() as u64);
         let cost = COST_PER_CELL * (raster.stats().valid + requested) as f64;
         check_cost(cost, state)?;
-        Ok((mode, Box::new(Run { hash, raster, cells: req.cells, total: req.evidence.total, settings, cost, requested })))
+        Ok((
+            mode,
+            Box::new(Run {
+                hash,
+                raster,
+                cells: req.cells,
+                total: req.evidence.total,
+                settings,
+                cost,
+                requested,
+            }),
+        ))
     }
 }
 
@@ -98,10 +100,18 @@ fn check_cells(cells: &[u32], raster: &Raster) -> Result<(), ApiError> {
     for (i, &c) in cells.iter().enumerate() {
         let pointer = format!("/inputs/cells/{i}");
         if c as u64 > last {
-            return Err(ApiError::InvalidInput { pointer, detail: format!("cell {c} lies outside the {w}x{h} raster (last index {last})") });
+            return Err(ApiError::InvalidInput {
+                pointer,
+                detail: format!("cell {c} lies outside the {w}x{h} raster (last index {last})"),
+            });
         }
         if raster.values()[c as usize].is_nan() {
-            return Err(ApiError::InvalidInput { pointer, detail: format!("cell {c} is nodata (outside the study area): remove it from the list") });
+            return Err(ApiError::InvalidInput {
+                pointer,
+                detail: format!(
+                    "cell {c} is nodata (outside the study area): remove it from the list"
+                ),
+            });
         }
     }
     Ok(())
@@ -125,13 +135,35 @@ impl Prepared for Run {
         self.requested
     }
     fn run(self: Box<Self>, state: &AppState, control: &Control) -> Result<Bytes, ApiError> {
-        let normaliser = state.caches().normaliser(&self.hash, &self.raster, self.total, control).map_err(engine_error)?;
-        let post = engine::cell_posterior(&self.raster, self.cells.as_deref(), &normaliser, &self.settings, control).map_err(engine_error)?;
+        let normaliser = state
+            .caches()
+            .normaliser(&self.hash, &self.raster, self.total, control)
+            .map_err(engine_error)?;
+        let post = engine::cell_posterior(
+            &self.raster,
+            self.cells.as_deref(),
+            &normaliser,
+            &self.settings,
+            control,
+        )
+        .map_err(engine_error)?;
         let doc = PosteriorDocument {
-            cells: post.cells.into_iter().map(|(cell, prior, posterior)| CellPosteriorOut { cell, prior, posterior }).collect(),
+            cells: post
+                .cells
+                .into_iter()
+                .map(|(cell, prior, posterior)| CellPosteriorOut {
+                    cell,
+                    prior,
+                    posterior,
+                })
+                .collect(),
             error_bound: post.error_bound,
             total: normaliser.check.clone().into(),
         };
-        serde_json::to_vec(&doc).map(Bytes::from).map_err(|e| ApiError::Internal { cause: format!("cannot encode results: {e}") })
+        serde_json::to_vec(&doc)
+            .map(Bytes::from)
+            .map_err(|e| ApiError::Internal {
+                cause: format!("cannot encode results: {e}"),
+            })
     }
 }

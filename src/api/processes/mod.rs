@@ -1,7 +1,7 @@
 //! The process registry: every OGC process the service offers, behind one trait, so a new
 //! process is one file and one line in `registry`.
 //!
-//! A process parses and validates its execute body (`prepare`, on the compute pool), which
+//! A process parses and validates its execute body (`prepare`, on a blocking thread), which
 //! yields a `Prepared` computation with its planned cost; running it (also on the pool) yields
 //! the JSON of its one output. Processes know the wire format and the engine, never HTTP.
 
@@ -22,7 +22,10 @@ use crate::engine::{Control, EngineError, Raster};
 
 /// Every process offered, in listing order.
 pub fn registry() -> Vec<Arc<dyn Process>> {
-    vec![Arc::new(zone_counts::ZoneCounts), Arc::new(cell_posterior::CellPosteriorProcess)]
+    vec![
+        Arc::new(zone_counts::ZoneCounts),
+        Arc::new(cell_posterior::CellPosteriorProcess),
+    ]
 }
 
 pub trait Process: Send + Sync + 'static {
@@ -35,8 +38,12 @@ pub trait Process: Send + Sync + 'static {
     fn inputs(&self) -> Value;
     /// The OGC `outputs` map.
     fn outputs(&self) -> Value;
-    /// Parses and validates an execute body. Runs on the compute pool.
-    fn prepare(&self, body: &[u8], state: &AppState) -> Result<(ResponseMode, Box<dyn Prepared>), ApiError>;
+    /// Parses and validates an execute body. Runs on a blocking thread, never the async workers.
+    fn prepare(
+        &self,
+        body: &[u8],
+        state: &AppState,
+    ) -> Result<(ResponseMode, Box<dyn Prepared>), ApiError>;
 }
 
 /// A validated execution, ready to run.
@@ -81,7 +88,10 @@ struct ExecuteBody<I> {
 }
 
 /// Parses an execute body whose inputs are `I`, checking the requested outputs.
-pub(crate) fn parse_execute<I: serde::de::DeserializeOwned>(body: &[u8], output: &str) -> Result<(I, ResponseMode), ApiError> {
+pub(crate) fn parse_execute<I: serde::de::DeserializeOwned>(
+    body: &[u8],
+    output: &str,
+) -> Result<(I, ResponseMode), ApiError> {
     let parsed: ExecuteBody<I> = super::body::parse(body)?;
     for (id, req) in parsed.outputs.iter().flatten() {
         if id != output {
@@ -94,7 +104,9 @@ pub(crate) fn parse_execute<I: serde::de::DeserializeOwned>(body: &[u8], output:
             if mode != "value" {
                 return Err(ApiError::InvalidInput {
                     pointer: format!("/outputs/{id}/transmissionMode"),
-                    detail: format!("transmission mode `{mode}` is not offered: outputs are sent by `value`"),
+                    detail: format!(
+                        "transmission mode `{mode}` is not offered: outputs are sent by `value`"
+                    ),
                 });
             }
         }
@@ -103,7 +115,10 @@ pub(crate) fn parse_execute<I: serde::de::DeserializeOwned>(body: &[u8], output:
 }
 
 /// The raster of a request, from the cache when referenced, hashed and kept when inline.
-pub(crate) fn resolve_raster(input: RasterInput, state: &AppState) -> Result<(String, Arc<Raster>), ApiError> {
+pub(crate) fn resolve_raster(
+    input: RasterInput,
+    state: &AppState,
+) -> Result<(String, Arc<Raster>), ApiError> {
     match input {
         RasterInput::Ref(r) => {
             if !super::cache::is_hash(&r.reference) {
@@ -112,14 +127,19 @@ pub(crate) fn resolve_raster(input: RasterInput, state: &AppState) -> Result<(St
                     detail: format!("`{}` is not a raster reference: it must be `sha256:` and 64 lowercase hex digits, as returned by POST /rasters", r.reference),
                 });
             }
-            let held = state.caches().raster(&r.reference).ok_or_else(|| ApiError::UnknownRaster {
-                pointer: "/inputs/raster/ref".into(),
-                reference: r.reference.clone(),
-            })?;
+            let held =
+                state
+                    .caches()
+                    .raster(&r.reference)
+                    .ok_or_else(|| ApiError::UnknownRaster {
+                        pointer: "/inputs/raster/ref".into(),
+                        reference: r.reference.clone(),
+                    })?;
             Ok((r.reference, held))
         }
         RasterInput::Inline(spec) => {
-            let raster = super::wire::decode_raster(spec, &state.config().limits()).map_err(|e| ApiError::from_decode(e, "/inputs"))?;
+            let raster = super::wire::decode_raster(spec, &state.config().limits())
+                .map_err(|e| ApiError::from_decode(e, "/inputs"))?;
             Ok(state.caches().keep_raster(raster))
         }
     }
@@ -136,17 +156,26 @@ pub(crate) fn check_total(raster: &Raster, total: u64) -> Result<(), ApiError> {
     } else {
         return Ok(());
     };
-    Err(ApiError::InvalidInput { pointer: "/inputs/evidence/total".into(), detail })
+    Err(ApiError::InvalidInput {
+        pointer: "/inputs/evidence/total".into(),
+        detail,
+    })
 }
 
 /// Maps an engine error to the request field to blame (inputs were validated, so these are rare).
 pub(crate) fn engine_error(e: EngineError) -> ApiError {
     match e {
         EngineError::Cancelled => ApiError::Cancelled,
-        EngineError::TooLarge(detail) => ApiError::TooLarge { pointer: "/inputs".into(), detail },
+        EngineError::TooLarge(detail) => ApiError::TooLarge {
+            pointer: "/inputs".into(),
+            detail,
+        },
         other => {
             let pointer = format!("/inputs{}", super::wire::engine_pointer(&other));
-            ApiError::InvalidInput { pointer, detail: other.to_string() }
+            ApiError::InvalidInput {
+                pointer,
+                detail: other.to_string(),
+            }
         }
     }
 }

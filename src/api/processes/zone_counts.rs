@@ -6,10 +6,15 @@ use std::sync::Arc;
 use bytes::Bytes;
 use serde_json::{json, Value};
 
-use super::{check_cost, check_total, engine_error, input, parse_execute, resolve_raster, schema_of, Prepared, Process, ResponseMode};
+use super::{
+    check_cost, check_total, engine_error, input, parse_execute, resolve_raster, schema_of,
+    Prepared, Process, ResponseMode,
+};
 use crate::api::problem::ApiError;
 use crate::api::state::AppState;
-use crate::api::wire::{self, EvalRequest, EvidenceSpec, RasterInput, ResultsDocument, SummariesSpec, ZoneSpec};
+use crate::api::wire::{
+    self, EvalRequest, EvidenceSpec, RasterInput, ResultsDocument, SummariesSpec, ZoneSpec,
+};
 use crate::engine::{self, Control, Plan, Raster, Settings, Zone};
 
 pub struct ZoneCounts;
@@ -40,16 +45,32 @@ impl Process for ZoneCounts {
     fn outputs(&self) -> Value {
         json!({OUTPUT: {"title": "zone counts", "description": "the results document: one entry per zone, in request order, and the total check", "schema": schema_of::<ResultsDocument>()}})
     }
-    fn prepare(&self, body: &[u8], state: &AppState) -> Result<(ResponseMode, Box<dyn Prepared>), ApiError> {
+    fn prepare(
+        &self,
+        body: &[u8],
+        state: &AppState,
+    ) -> Result<(ResponseMode, Box<dyn Prepared>), ApiError> {
         let (req, mode): (EvalRequest, _) = parse_execute(body, OUTPUT)?;
         let limits = state.config().limits();
-        let settings = wire::decode_settings(req.summaries).map_err(|e| ApiError::from_decode(e, "/inputs"))?;
+        let settings = wire::decode_settings(req.summaries)
+            .map_err(|e| ApiError::from_decode(e, "/inputs"))?;
         let (hash, raster) = resolve_raster(req.raster, state)?;
-        let zones = wire::decode_zones(req.zones, &raster, &limits).map_err(|e| ApiError::from_decode(e, "/inputs"))?;
+        let zones = wire::decode_zones(req.zones, &raster, &limits)
+            .map_err(|e| ApiError::from_decode(e, "/inputs"))?;
         check_total(&raster, req.evidence.total)?;
         let plan = engine::plan(&raster, &zones);
         check_cost(plan.estimated_cost, state)?;
-        Ok((mode, Box::new(Run { hash, raster, zones, total: req.evidence.total, settings, plan })))
+        Ok((
+            mode,
+            Box::new(Run {
+                hash,
+                raster,
+                zones,
+                total: req.evidence.total,
+                settings,
+                plan,
+            }),
+        ))
     }
 }
 
@@ -70,9 +91,27 @@ impl Prepared for Run {
         self.zones.iter().map(|z| z.len() as u64).sum()
     }
     fn run(self: Box<Self>, state: &AppState, control: &Control) -> Result<Bytes, ApiError> {
-        let normaliser = state.caches().normaliser(&self.hash, &self.raster, self.total, control).map_err(engine_error)?;
-        let zones = engine::execute(&self.plan, &self.raster, &self.zones, &normaliser, &self.settings, control).map_err(engine_error)?;
-        let doc = ResultsDocument { zones: zones.into_iter().map(Into::into).collect(), total: normaliser.check.clone().into() };
-        serde_json::to_vec(&doc).map(Bytes::from).map_err(|e| ApiError::Internal { cause: format!("cannot encode results: {e}") })
+        let normaliser = state
+            .caches()
+            .normaliser(&self.hash, &self.raster, self.total, control)
+            .map_err(engine_error)?;
+        let zones = engine::execute(
+            &self.plan,
+            &self.raster,
+            &self.zones,
+            &normaliser,
+            &self.settings,
+            control,
+        )
+        .map_err(engine_error)?;
+        let doc = ResultsDocument {
+            zones: zones.into_iter().map(Into::into).collect(),
+            total: normaliser.check.clone().into(),
+        };
+        serde_json::to_vec(&doc)
+            .map(Bytes::from)
+            .map_err(|e| ApiError::Internal {
+                cause: format!("cannot encode results: {e}"),
+            })
     }
 }
