@@ -34,16 +34,8 @@ pub fn execute(
     Ok(out)
 }
 
-pub(crate) fn summary_of(
-    raster: &Raster,
-    z: &Zone,
-    offset: u64,
-    pmf: Vec<f64>,
-    settings: &Settings,
-    bound: f64,
-) -> ZoneSummary {
-    let (mean, sd, mode, median, interval, exceedance) =
-        summarise(offset, &pmf, settings.level, &settings.thresholds);
+pub(crate) fn summary_of(raster: &Raster, z: &Zone, offset: u64, pmf: Vec<f64>, settings: &Settings, bound: f64) -> ZoneSummary {
+    let (mean, sd, mode, median, interval, exceedance) = summarise(offset, &pmf, settings.level, &settings.thresholds);
     let (mut pm, mut pv) = (0.0, 0.0);
     for &c in z.cells() {
         let p = raster.values()[c as usize];
@@ -76,23 +68,14 @@ pub fn cell_posterior(
 ) -> Result<CellPosterior, EngineError> {
     let list: Vec<u32> = match cells {
         Some(c) => c.to_vec(),
-        None => (0..raster.len() as u32)
-            .filter(|&c| !raster.values()[c as usize].is_nan())
-            .collect(),
+        None => (0..raster.len() as u32).filter(|&c| !raster.values()[c as usize].is_nan()).collect(),
     };
     let mut out = Vec::with_capacity(list.len());
     for c in list {
         control.check()?;
         let pmf = super::reference::conditional_pmf(raster, &[c], normaliser.total())
             .ok_or_else(|| EngineError::ImpossibleTotal("impossible total".into()))?;
-        out.push((
-            c,
-            raster.values()[c as usize],
-            pmf.get(1).copied().unwrap_or(0.0),
-        ));
+        out.push((c, raster.values()[c as usize], pmf.get(1).copied().unwrap_or(0.0)));
     }
-    Ok(CellPosterior {
-        cells: out,
-        error_bound: 0.0,
-    })
+    Ok(CellPosterior { cells: out, error_bound: 0.0 })
 }

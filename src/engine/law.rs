@@ -42,12 +42,7 @@ pub(crate) struct Law {
 impl Law {
     /// The law of an empty set of cells: N = 0 for certain.
     pub fn unit() -> Law {
-        Law {
-            lo: 0,
-            values: vec![1.0],
-            dropped: 0.0,
-            rounding: 0,
-        }
+        Law { lo: 0, values: vec![1.0], dropped: 0.0, rounding: 0 }
     }
 
     /// Largest count value held.
@@ -64,10 +59,7 @@ impl Law {
         if k < self.lo {
             return 0.0;
         }
-        self.values
-            .get((k - self.lo) as usize)
-            .copied()
-            .unwrap_or(0.0)
+        self.values.get((k - self.lo) as usize).copied().unwrap_or(0.0)
     }
 
     /// Folds in independent Bernoulli cells, given as (q, 1 - q) pairs, one at a time.
@@ -201,12 +193,7 @@ pub(crate) fn restrict(law: Law, lo: u64, hi: u64) -> Option<Law> {
     }
     let start = (lo2 - law.lo) as usize;
     let end = (hi2 - law.lo) as usize + 1;
-    Some(Law {
-        lo: lo2,
-        values: law.values[start..end].to_vec(),
-        dropped: law.dropped,
-        rounding: law.rounding,
-    })
+    Some(Law { lo: lo2, values: law.values[start..end].to_vec(), dropped: law.dropped, rounding: law.rounding })
 }
 
 #[cfg(test)]
@@ -253,12 +240,7 @@ mod tests {
 
     #[test]
     fn trim_drops_small_ends_within_budget() {
-        let mut l = Law {
-            lo: 10,
-            values: vec![1e-20, 1e-9, 0.5, 0.5 - 2e-9, 1e-9, 1e-19],
-            dropped: 0.0,
-            rounding: 0,
-        };
+        let mut l = Law { lo: 10, values: vec![1e-20, 1e-9, 0.5, 0.5 - 2e-9, 1e-9, 1e-19], dropped: 0.0, rounding: 0 };
         l.trim(1e-18);
         assert_eq!(l.lo, 11);
         assert_eq!(l.len(), 4);

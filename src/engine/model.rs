@@ -82,15 +82,8 @@ impl Raster {
 
     /// Builds a raster from values already known to be in [0, 1] or NaN (nodata).
     /// Used by generators that produce valid values by construction.
-    pub fn from_probabilities(
-        width: u32,
-        height: u32,
-        values: Vec<f64>,
-    ) -> Result<Raster, EngineError> {
-        let wrapped = values
-            .into_iter()
-            .map(|p| if p.is_nan() { None } else { Some(p) })
-            .collect();
+    pub fn from_probabilities(width: u32, height: u32, values: Vec<f64>) -> Result<Raster, EngineError> {
+        let wrapped = values.into_iter().map(|p| if p.is_nan() { None } else { Some(p) }).collect();
         Raster::new(width, height, wrapped)
     }
 
@@ -109,12 +102,7 @@ impl Raster {
             }
             stats.sum_p += p;
         }
-        Raster {
-            width,
-            height,
-            values,
-            stats,
-        }
+        Raster { width, height, values, stats }
     }
 
     pub fn width(&self) -> u32 {
@@ -163,11 +151,7 @@ impl Zone {
     ///
     /// Occurs as an error when the zone is empty, a cell lies outside the raster, a cell is
     /// nodata, or a cell is listed twice.
-    pub fn new(
-        id: impl Into<String>,
-        cells: Vec<u32>,
-        raster: &Raster,
-    ) -> Result<Zone, EngineError> {
+    pub fn new(id: impl Into<String>, cells: Vec<u32>, raster: &Raster) -> Result<Zone, EngineError> {
         let id = id.into();
         let (w, h) = (raster.width(), raster.height());
         let last = raster.len() as u64 - 1;
@@ -204,10 +188,7 @@ impl Zone {
             return Err(EngineError::InvalidZone {
                 zone: id.clone(),
                 position: None,
-                detail: format!(
-                    "zone `{id}` lists cell {} more than once: list each cell once",
-                    w2[0]
-                ),
+                detail: format!("zone `{id}` lists cell {} more than once: list each cell once", w2[0]),
             });
         }
         Ok(Zone { id, cells: sorted })
@@ -267,29 +248,17 @@ pub struct Settings {
 
 impl Default for Settings {
     fn default() -> Self {
-        Settings {
-            level: DEFAULT_LEVEL,
-            thresholds: Vec::new(),
-            tolerance: DEFAULT_TOLERANCE,
-            pmf: true,
-        }
+        Settings { level: DEFAULT_LEVEL, thresholds: Vec::new(), tolerance: DEFAULT_TOLERANCE, pmf: true }
     }
 }
 
 impl Settings {
     /// Occurs as an error when the level is not in (0, 1) or the tolerance is out of range.
-    pub fn new(
-        level: f64,
-        thresholds: Vec<u64>,
-        tolerance: f64,
-        pmf: bool,
-    ) -> Result<Settings, EngineError> {
+    pub fn new(level: f64, thresholds: Vec<u64>, tolerance: f64, pmf: bool) -> Result<Settings, EngineError> {
         if !(level > 0.0 && level < 1.0) {
             return Err(EngineError::InvalidSetting {
                 field: "interval",
-                detail: format!(
-                    "interval level {level} must lie strictly between 0 and 1, e.g. 0.9"
-                ),
+                detail: format!("interval level {level} must lie strictly between 0 and 1, e.g. 0.9"),
             });
         }
         if !(MIN_TOLERANCE..=MAX_TOLERANCE).contains(&tolerance) {
@@ -300,11 +269,6 @@ impl Settings {
                 ),
             });
         }
-        Ok(Settings {
-            level,
-            thresholds,
-            tolerance,
-            pmf,
-        })
+        Ok(Settings { level, thresholds, tolerance, pmf })
     }
 }

@@ -104,15 +104,9 @@ impl Normaliser {
                 (true, false) => (p_eq, 1.0),
                 (false, false) => (1.0, p_eq),
             };
-            let check = total_check(
-                total, prior_mean, prior_sd, z_score, p_at_most, p_at_least, log_p,
-            );
+            let check = total_check(total, prior_mean, prior_sd, z_score, p_at_most, p_at_least, log_p);
             return Ok(Normaliser {
-                regime: if all_empty {
-                    Regime::AllEmpty
-                } else {
-                    Regime::AllFull
-                },
+                regime: if all_empty { Regime::AllEmpty } else { Regime::AllFull },
                 total,
                 target,
                 z_lo: 1.0,
@@ -127,12 +121,7 @@ impl Normaliser {
         control.check()?;
         let z_estimate = 0.25 / tilt.var.sqrt().max(1.0);
         let eps = NORMALISER_SHARE * MIN_TOLERANCE * z_estimate / trims_for(values.len()) as f64;
-        let law = Cells {
-            values,
-            t: tilt.t,
-            eps,
-        }
-        .law_of_span(0, values.len());
+        let law = Cells { values, t: tilt.t, eps }.law_of_span(0, values.len());
         control.check()?;
         let z = law.at(target);
         let g = gamma(law.rounding);
@@ -142,9 +131,7 @@ impl Normaliser {
         let log_eq = z.ln() + tilt.log_c - tilt.theta * target as f64;
         let p_eq = log_eq.exp();
         let (p_at_most, p_at_least) = tails(&law, &tilt, target, free_mean, log_eq, p_eq);
-        let check = total_check(
-            total, prior_mean, prior_sd, z_score, p_at_most, p_at_least, log_eq,
-        );
+        let check = total_check(total, prior_mean, prior_sd, z_score, p_at_most, p_at_least, log_eq);
         Ok(Normaliser {
             regime: Regime::Tilted(tilt),
             total,
@@ -159,9 +146,7 @@ impl Normaliser {
 
     /// Bytes held (for cache accounting).
     pub fn heap_bytes(&self) -> usize {
-        std::mem::size_of::<Normaliser>()
-            + self.law_len * 8
-            + self.check.warning.as_ref().map_or(0, |w| w.len())
+        std::mem::size_of::<Normaliser>() + self.law_len * 8 + self.check.warning.as_ref().map_or(0, |w| w.len())
     }
 
     pub fn total(&self) -> u64 {
@@ -172,22 +157,12 @@ impl Normaliser {
 /// P(total <= m) and P(total >= m) under the prior, from the tilted law around the target.
 /// The tail away from the prior mean is summed directly (its weights e^{-theta (j - m)} decay),
 /// the other is its complement.
-fn tails(
-    law: &Law,
-    tilt: &Tilt,
-    target: u64,
-    free_mean: f64,
-    log_eq: f64,
-    p_eq: f64,
-) -> (f64, f64) {
+fn tails(law: &Law, tilt: &Tilt, target: u64, free_mean: f64, log_eq: f64, p_eq: f64) -> (f64, f64) {
     let theta = tilt.theta;
     let upper_small = target as f64 >= free_mean;
     let mut s = 0.0;
-    let ks: Box<dyn Iterator<Item = u64>> = if upper_small {
-        Box::new((target..=law.hi()).rev())
-    } else {
-        Box::new(law.lo..=target)
-    };
+    let ks: Box<dyn Iterator<Item = u64>> =
+        if upper_small { Box::new((target..=law.hi()).rev()) } else { Box::new(law.lo..=target) };
     let z = law.at(target);
     for k in ks {
         let d = k as f64 - target as f64;
@@ -217,14 +192,5 @@ fn total_check(
             "the observed total is implausible under this raster: it may be miscalibrated (observed {observed}, prior mean {prior_mean:.1}, sd {prior_sd:.1}, tail probability {low:.2e})"
         )
     });
-    TotalCheck {
-        observed,
-        prior_mean,
-        prior_sd,
-        z_score,
-        p_at_most,
-        p_at_least,
-        log_p_equal,
-        warning,
-    }
+    TotalCheck { observed, prior_mean, prior_sd, z_score, p_at_most, p_at_least, log_p_equal, warning }
 }
