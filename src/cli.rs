@@ -29,15 +29,36 @@ pub fn eval(path: &str) -> Result<String, CliError> {
             .map_err(|e| CliError::input(format!("cannot read standard input: {e}")))?;
         s
     } else {
-        std::fs::read_to_string(path).map_err(|e| CliError::input(format!("cannot read `{path}`: {e}")))?
+        std::fs::read_to_string(path)
+            .map_err(|e| CliError::input(format!("cannot read `{path}`: {e}")))?
     };
     let request: EvalRequest = serde_json::from_str(&text).map_err(|e| {
-        CliError::input(format!("`{path}` is not a valid request document: {e} (see README.md for the fields)"))
+        CliError::input(format!(
+            "`{path}` is not a valid request document: {e} (see README.md for the fields)"
+        ))
     })?;
-    let decoded = wire::decode(request, &Limits::default())
-        .map_err(|e| CliError::input(format!("{}: {}", if e.pointer.is_empty() { "/" } else { &e.pointer }, e.detail)))?;
-    let evaluation = engine::evaluate(&decoded.raster, &decoded.zones, decoded.total, &decoded.settings, &Control::new())
-        .map_err(|e| CliError::input(format!("{}: {e}", wire::engine_pointer(&e))))?;
+    let decoded = wire::decode(request, &Limits::default()).map_err(|e| {
+        CliError::input(format!(
+            "{}: {}",
+            if e.pointer.is_empty() {
+                "/"
+            } else {
+                &e.pointer
+            },
+            e.detail
+        ))
+    })?;
+    let evaluation = engine::evaluate(
+        &decoded.raster,
+        &decoded.zones,
+        decoded.total,
+        &decoded.settings,
+        &Control::new(),
+    )
+    .map_err(|e| CliError::input(format!("{}: {e}", wire::engine_pointer(&e))))?;
     let doc = ResultsDocument::from(evaluation);
-    serde_json::to_string_pretty(&doc).map_err(|e| CliError { message: format!("cannot encode results: {e}"), code: 1 })
+    serde_json::to_string_pretty(&doc).map_err(|e| CliError {
+        message: format!("cannot encode results: {e}"),
+        code: 1,
+    })
 }

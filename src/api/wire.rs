@@ -460,7 +460,7 @@ pub struct ResultsDocument {
 
 impl From<ZoneSummary> for ZoneResult {
     fn from(z: ZoneSummary) -> Self {
-        let pmf = (!z.pmf.is_empty()).then(|| PmfOut {
+        let pmf = (!z.pmf.is_empty()).then_some(PmfOut {
             offset: z.offset,
             values: z.pmf,
         });

@@ -13,7 +13,11 @@ pub enum EngineError {
     InvalidValue { cell: u32, detail: String },
     /// Occurs when a zone is empty, lists a cell twice, or names a cell outside the raster or nodata.
     #[error("{detail}")]
-    InvalidZone { zone: String, position: Option<usize>, detail: String },
+    InvalidZone {
+        zone: String,
+        position: Option<usize>,
+        detail: String,
+    },
     /// Occurs when no zone or cell was given where at least one is needed.
     #[error("{0}")]
     NothingToDo(String),

@@ -8,6 +8,7 @@
 mod control;
 mod error;
 mod execute;
+mod fft;
 pub(crate) mod law;
 mod model;
 mod normaliser;
@@ -21,8 +22,8 @@ pub use control::Control;
 pub use error::EngineError;
 pub use execute::{cell_posterior, execute, CellPosterior};
 pub use model::{
-    check_unique_ids, CellIndex, Raster, RasterStats, Settings, Zone, DEFAULT_LEVEL, DEFAULT_TOLERANCE, MAX_TOLERANCE,
-    MIN_TOLERANCE,
+    check_unique_ids, CellIndex, Raster, RasterStats, Settings, Zone, DEFAULT_LEVEL,
+    DEFAULT_TOLERANCE, MAX_TOLERANCE, MIN_TOLERANCE,
 };
 pub use normaliser::{Normaliser, TotalCheck, IMPLAUSIBLE_TAIL};
 pub use plan::{plan, Plan, PlanNode};
@@ -47,11 +48,16 @@ pub fn evaluate(
     control: &Control,
 ) -> Result<Evaluation, EngineError> {
     if zones.is_empty() {
-        return Err(EngineError::NothingToDo("the zone list is empty: give at least one zone".into()));
+        return Err(EngineError::NothingToDo(
+            "the zone list is empty: give at least one zone".into(),
+        ));
     }
     check_unique_ids(zones)?;
     let normaliser = Normaliser::new(raster, total, control)?;
     let plan = plan(raster, zones);
     let summaries = execute(&plan, raster, zones, &normaliser, settings, control)?;
-    Ok(Evaluation { zones: summaries, total: normaliser.check.clone() })
+    Ok(Evaluation {
+        zones: summaries,
+        total: normaliser.check.clone(),
+    })
 }

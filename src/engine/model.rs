@@ -44,24 +44,7 @@ impl Raster {
     /// Occurs as an error when the size does not match, the raster is empty or larger than
     /// `u32` indices allow, or a value is not a probability.
     pub fn new(width: u32, height: u32, values: Vec<Option<f64>>) -> Result<Raster, EngineError> {
-        let expected = (width as u64) * (height as u64);
-        if width == 0 || height == 0 {
-            return Err(EngineError::InvalidRaster(format!(
-                "raster is {width}x{height}: width and height must both be at least 1"
-            )));
-        }
-        if expected > u32::MAX as u64 {
-            return Err(EngineError::InvalidRaster(format!(
-                "raster is {width}x{height} = {expected} cells: at most {} cells are supported",
-                u32::MAX
-            )));
-        }
-        if values.len() as u64 != expected {
-            return Err(EngineError::InvalidRaster(format!(
-                "raster is {width}x{height} = {expected} cells but {} values were given",
-                values.len()
-            )));
-        }
+        check_shape(width, height, values.len())?;
         let mut out = Vec::with_capacity(values.len());
         for (i, v) in values.into_iter().enumerate() {
             match v {
@@ -80,11 +63,29 @@ impl Raster {
         Ok(Self::from_checked(width, height, out))
     }
 
-    /// Builds a raster from values already known to be in [0, 1] or NaN (nodata).
-    /// Used by generators that produce valid values by construction.
-    pub fn from_probabilities(width: u32, height: u32, values: Vec<f64>) -> Result<Raster, EngineError> {
-        let wrapped = values.into_iter().map(|p| if p.is_nan() { None } else { Some(p) }).collect();
-        Raster::new(width, height, wrapped)
+    /// Builds a raster from row-major values where NaN marks nodata, validating in place (no
+    /// copy: large generated rasters need not exist twice).
+    ///
+    /// Occurs as an error on the same conditions as `new`.
+    pub fn from_probabilities(
+        width: u32,
+        height: u32,
+        values: Vec<f64>,
+    ) -> Result<Raster, EngineError> {
+        check_shape(width, height, values.len())?;
+        if let Some(i) = values
+            .iter()
+            .position(|p| !p.is_nan() && !(0.0..=1.0).contains(p))
+        {
+            let p = values[i];
+            return Err(EngineError::InvalidValue {
+                cell: i as u32,
+                detail: format!(
+                    "cell {i} has value {p}: a probability must lie in [0, 1] (use nodata for cells outside the study area)"
+                ),
+            });
+        }
+        Ok(Self::from_checked(width, height, values))
     }
 
     fn from_checked(width: u32, height: u32, values: Vec<f64>) -> Raster {
@@ -102,7 +103,12 @@ impl Raster {
             }
             stats.sum_p += p;
         }
-        Raster { width, height, values, stats }
+        Raster {
+            width,
+            height,
+            values,
+            stats,
+        }
     }
 
     pub fn width(&self) -> u32 {
@@ -139,6 +145,29 @@ impl Raster {
     }
 }
 
+/// Occurs as an error when the size does not match, the raster is empty or larger than `u32`
+/// indices allow.
+fn check_shape(width: u32, height: u32, len: usize) -> Result<(), EngineError> {
+    let expected = (width as u64) * (height as u64);
+    if width == 0 || height == 0 {
+        return Err(EngineError::InvalidRaster(format!(
+            "raster is {width}x{height}: width and height must both be at least 1"
+        )));
+    }
+    if expected > u32::MAX as u64 {
+        return Err(EngineError::InvalidRaster(format!(
+            "raster is {width}x{height} = {expected} cells: at most {} cells are supported",
+            u32::MAX
+        )));
+    }
+    if len as u64 != expected {
+        return Err(EngineError::InvalidRaster(format!(
+            "raster is {width}x{height} = {expected} cells but {len} values were given"
+        )));
+    }
+    Ok(())
+}
+
 /// A named set of cells. Cells are distinct, valid (not nodata) and sorted.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Zone {
@@ -151,7 +180,11 @@ impl Zone {
     ///
     /// Occurs as an error when the zone is empty, a cell lies outside the raster, a cell is
     /// nodata, or a cell is listed twice.
-    pub fn new(id: impl Into<String>, cells: Vec<u32>, raster: &Raster) -> Result<Zone, EngineError> {
+    pub fn new(
+        id: impl Into<String>,
+        cells: Vec<u32>,
+        raster: &Raster,
+    ) -> Result<Zone, EngineError> {
         let id = id.into();
         let (w, h) = (raster.width(), raster.height());
         let last = raster.len() as u64 - 1;
@@ -188,10 +221,21 @@ impl Zone {
             return Err(EngineError::InvalidZone {
                 zone: id.clone(),
                 position: None,
-                detail: format!("zone `{id}` lists cell {} more than once: list each cell once", w2[0]),
+                detail: format!(
+                    "zone `{id}` lists cell {} more than once: list each cell once",
+                    w2[0]
+                ),
             });
         }
         Ok(Zone { id, cells: sorted })
+    }
+
+    /// An unnamed block of cells already known to be valid, distinct and sorted (internal use).
+    pub(crate) fn block(cells: Vec<u32>) -> Zone {
+        Zone {
+            id: String::new(),
+            cells,
+        }
     }
 
     pub fn id(&self) -> &str {
@@ -217,7 +261,10 @@ pub fn check_unique_ids(zones: &[Zone]) -> Result<(), EngineError> {
             return Err(EngineError::InvalidZone {
                 zone: z.id().to_string(),
                 position: None,
-                detail: format!("zone id `{}` is used twice (second time at zone {i}): give each zone its own id", z.id()),
+                detail: format!(
+                    "zone id `{}` is used twice (second time at zone {i}): give each zone its own id",
+                    z.id()
+                ),
             });
         }
     }
@@ -248,17 +295,29 @@ pub struct Settings {
 
 impl Default for Settings {
     fn default() -> Self {
-        Settings { level: DEFAULT_LEVEL, thresholds: Vec::new(), tolerance: DEFAULT_TOLERANCE, pmf: true }
+        Settings {
+            level: DEFAULT_LEVEL,
+            thresholds: Vec::new(),
+            tolerance: DEFAULT_TOLERANCE,
+            pmf: true,
+        }
     }
 }
 
 impl Settings {
     /// Occurs as an error when the level is not in (0, 1) or the tolerance is out of range.
-    pub fn new(level: f64, thresholds: Vec<u64>, tolerance: f64, pmf: bool) -> Result<Settings, EngineError> {
+    pub fn new(
+        level: f64,
+        thresholds: Vec<u64>,
+        tolerance: f64,
+        pmf: bool,
+    ) -> Result<Settings, EngineError> {
         if !(level > 0.0 && level < 1.0) {
             return Err(EngineError::InvalidSetting {
                 field: "interval",
-                detail: format!("interval level {level} must lie strictly between 0 and 1, e.g. 0.9"),
+                detail: format!(
+                    "interval level {level} must lie strictly between 0 and 1, e.g. 0.9"
+                ),
             });
         }
         if !(MIN_TOLERANCE..=MAX_TOLERANCE).contains(&tolerance) {
@@ -269,6 +328,11 @@ impl Settings {
                 ),
             });
         }
-        Ok(Settings { level, thresholds, tolerance, pmf })
+        Ok(Settings {
+            level,
+            thresholds,
+            tolerance,
+            pmf,
+        })
     }
 }

@@ -7,7 +7,7 @@
 
 use super::control::Control;
 use super::error::EngineError;
-use super::law::{gamma, Law, UNIT_ROUNDOFF};
+use super::law::{gamma, Law, FFT_MIN_LEN, UNIT_ROUNDOFF};
 use super::model::{Raster, MIN_TOLERANCE};
 use super::sets::{trims_for, Cells};
 use super::tilt::{self, Tilt};
@@ -57,8 +57,6 @@ pub struct Normaliser {
     /// Certified bounds on the tilted P~(free total = target).
     pub(crate) z_lo: f64,
     pub(crate) z_hi: f64,
-    /// Roundings behind the computed P~(free total = target).
-    pub(crate) z_rounding: u64,
     pub check: TotalCheck,
     law_len: usize,
 }
@@ -104,14 +102,19 @@ impl Normaliser {
                 (true, false) => (p_eq, 1.0),
                 (false, false) => (1.0, p_eq),
             };
-            let check = total_check(total, prior_mean, prior_sd, z_score, p_at_most, p_at_least, log_p);
+            let check = total_check(
+                total, prior_mean, prior_sd, z_score, p_at_most, p_at_least, log_p,
+            );
             return Ok(Normaliser {
-                regime: if all_empty { Regime::AllEmpty } else { Regime::AllFull },
+                regime: if all_empty {
+                    Regime::AllEmpty
+                } else {
+                    Regime::AllFull
+                },
                 total,
                 target,
                 z_lo: 1.0,
                 z_hi: 1.0,
-                z_rounding: 0,
                 check,
                 law_len: 1,
             });
@@ -121,24 +124,31 @@ impl Normaliser {
         control.check()?;
         let z_estimate = 0.25 / tilt.var.sqrt().max(1.0);
         let eps = NORMALISER_SHARE * MIN_TOLERANCE * z_estimate / trims_for(values.len()) as f64;
-        let law = Cells { values, t: tilt.t, eps }.law_of_span(0, values.len());
+        let law = Cells {
+            values,
+            t: tilt.t,
+            eps,
+            fft_min: FFT_MIN_LEN,
+        }
+        .law_of_span(0, values.len());
         control.check()?;
         let z = law.at(target);
         let g = gamma(law.rounding);
-        let z_lo = z * (1.0 - g);
-        let z_hi = (z * (1.0 + g) + law.dropped) * (1.0 + 2.0 * UNIT_ROUNDOFF);
+        let z_lo = (z - law.abs_err).max(0.0) * (1.0 - g);
+        let z_hi = ((z + law.abs_err) * (1.0 + g) + law.dropped) * (1.0 + 2.0 * UNIT_ROUNDOFF);
 
         let log_eq = z.ln() + tilt.log_c - tilt.theta * target as f64;
         let p_eq = log_eq.exp();
         let (p_at_most, p_at_least) = tails(&law, &tilt, target, free_mean, log_eq, p_eq);
-        let check = total_check(total, prior_mean, prior_sd, z_score, p_at_most, p_at_least, log_eq);
+        let check = total_check(
+            total, prior_mean, prior_sd, z_score, p_at_most, p_at_least, log_eq,
+        );
         Ok(Normaliser {
             regime: Regime::Tilted(tilt),
             total,
             target,
             z_lo,
             z_hi,
-            z_rounding: law.rounding,
             check,
             law_len: law.len(),
         })
@@ -146,7 +156,9 @@ impl Normaliser {
 
     /// Bytes held (for cache accounting).
     pub fn heap_bytes(&self) -> usize {
-        std::mem::size_of::<Normaliser>() + self.law_len * 8 + self.check.warning.as_ref().map_or(0, |w| w.len())
+        std::mem::size_of::<Normaliser>()
+            + self.law_len * 8
+            + self.check.warning.as_ref().map_or(0, |w| w.len())
     }
 
     pub fn total(&self) -> u64 {
@@ -157,12 +169,22 @@ impl Normaliser {
 /// P(total <= m) and P(total >= m) under the prior, from the tilted law around the target.
 /// The tail away from the prior mean is summed directly (its weights e^{-theta (j - m)} decay),
 /// the other is its complement.
-fn tails(law: &Law, tilt: &Tilt, target: u64, free_mean: f64, log_eq: f64, p_eq: f64) -> (f64, f64) {
+fn tails(
+    law: &Law,
+    tilt: &Tilt,
+    target: u64,
+    free_mean: f64,
+    log_eq: f64,
+    p_eq: f64,
+) -> (f64, f64) {
     let theta = tilt.theta;
     let upper_small = target as f64 >= free_mean;
     let mut s = 0.0;
-    let ks: Box<dyn Iterator<Item = u64>> =
-        if upper_small { Box::new((target..=law.hi()).rev()) } else { Box::new(law.lo..=target) };
+    let ks: Box<dyn Iterator<Item = u64>> = if upper_small {
+        Box::new((target..=law.hi()).rev())
+    } else {
+        Box::new(law.lo..=target)
+    };
     let z = law.at(target);
     for k in ks {
         let d = k as f64 - target as f64;
@@ -192,5 +214,14 @@ fn total_check(
             "the observed total is implausible under this raster: it may be miscalibrated (observed {observed}, prior mean {prior_mean:.1}, sd {prior_sd:.1}, tail probability {low:.2e})"
         )
     });
-    TotalCheck { observed, prior_mean, prior_sd, z_score, p_at_most, p_at_least, log_p_equal, warning }
+    TotalCheck {
+        observed,
+        prior_mean,
+        prior_sd,
+        z_score,
+        p_at_most,
+        p_at_least,
+        log_p_equal,
+        warning,
+    }
 }

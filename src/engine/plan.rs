@@ -87,9 +87,17 @@ fn hilbert(mut x: u32, mut y: u32) -> u64 {
     d
 }
 
-/// Plans the union tree for `zones` on `raster`. `zones` must be non-empty.
+/// Plans the union tree for `zones` on `raster` (an empty plan for no zones).
 pub fn plan(raster: &Raster, zones: &[Zone]) -> Plan {
-    assert!(!zones.is_empty(), "the caller checks for an empty zone list");
+    if zones.is_empty() {
+        return Plan {
+            nodes: Vec::new(),
+            root: 0,
+            overlapping: false,
+            covered: 0,
+            estimated_cost: 0.0,
+        };
+    }
     let (w, h) = (raster.width() as f64, raster.height() as f64);
     let scale = ((1u64 << HILBERT_ORDER) - 1) as f64 / w.max(h);
     let mut keyed: Vec<(u64, usize)> = zones
@@ -102,7 +110,10 @@ pub fn plan(raster: &Raster, zones: &[Zone]) -> Plan {
                 sc += (c % raster.width()) as f64;
             }
             let n = z.len() as f64;
-            let key = hilbert(((sc / n + 0.5) * scale) as u32, ((sr / n + 0.5) * scale) as u32);
+            let key = hilbert(
+                ((sc / n + 0.5) * scale) as u32,
+                ((sr / n + 0.5) * scale) as u32,
+            );
             (key, i)
         })
         .collect();
@@ -126,14 +137,24 @@ pub fn plan(raster: &Raster, zones: &[Zone]) -> Plan {
     }
 
     let stats = raster.stats();
-    let var_per_cell = if stats.free > 0 { stats.sum_var / stats.free as f64 } else { 0.0 };
+    let var_per_cell = if stats.free > 0 {
+        stats.sum_var / stats.free as f64
+    } else {
+        0.0
+    };
     let mut nodes = Vec::with_capacity(2 * zones.len());
     let root = build(&order, zones, None, 0, var_per_cell, &mut nodes);
     let free_share = stats.free as f64 / raster.len() as f64;
     let normaliser = raster.len() as f64 * free_share * COST_PER_CELL * 2.0;
     let outside = (stats.valid.saturating_sub(covered)) as f64 * COST_PER_CELL;
     let estimated_cost = nodes.iter().map(|n| n.cost).sum::<f64>() + normaliser + outside;
-    Plan { nodes, root, overlapping, covered, estimated_cost }
+    Plan {
+        nodes,
+        root,
+        overlapping,
+        covered,
+        estimated_cost,
+    }
 }
 
 /// Estimated window width of a law over `cells` cells.
@@ -142,10 +163,24 @@ pub(crate) fn window(cells: u64, var_per_cell: f64) -> f64 {
     (2.0 * COST_WINDOW_SD * sd + 1.0).min(cells as f64 + 1.0)
 }
 
-fn build(order: &[usize], zones: &[Zone], parent: Option<usize>, depth: u32, var: f64, nodes: &mut Vec<PlanNode>) -> usize {
+fn build(
+    order: &[usize],
+    zones: &[Zone],
+    parent: Option<usize>,
+    depth: u32,
+    var: f64,
+    nodes: &mut Vec<PlanNode>,
+) -> usize {
     let id = nodes.len();
     let weight: u64 = order.iter().map(|&z| zones[z].len() as u64).sum();
-    nodes.push(PlanNode { parent, children: None, zone: None, weight, depth, cost: 0.0 });
+    nodes.push(PlanNode {
+        parent,
+        children: None,
+        zone: None,
+        weight,
+        depth,
+        cost: 0.0,
+    });
     if order.len() == 1 {
         let cells = weight as f64;
         nodes[id].zone = Some(order[0]);
@@ -181,14 +216,18 @@ mod tests {
     }
 
     fn rect(r: &Raster, id: &str, row: u32, col: u32, rows: u32, cols: u32) -> Zone {
-        let cells = (row..row + rows).flat_map(|y| (col..col + cols).map(move |x| y * r.width() + x)).collect();
+        let cells = (row..row + rows)
+            .flat_map(|y| (col..col + cols).map(move |x| y * r.width() + x))
+            .collect();
         Zone::new(id, cells, r).unwrap()
     }
 
     #[test]
     fn hilbert_visits_a_small_grid_once() {
         // reference: common practice, the order-1 Hilbert curve visits (0,0),(0,1),(1,1),(1,0)
-        let mut ds: Vec<u64> = (0..4u32).flat_map(|x| (0..4u32).map(move |y| hilbert(x, y))).collect();
+        let mut ds: Vec<u64> = (0..4u32)
+            .flat_map(|x| (0..4u32).map(move |y| hilbert(x, y)))
+            .collect();
         ds.sort_unstable();
         ds.dedup();
         assert_eq!(ds.len(), 16);

@@ -46,7 +46,11 @@ pub fn conditional_pmf(raster: &Raster, zone: &[u32], total: u64) -> Option<Vec<
         let (mut lo, mut hi) = (-745.0f64, 709.0f64);
         for _ in 0..200 {
             let mid = 0.5 * (lo + hi);
-            let s: f64 = free_in.iter().chain(&free_out).map(|&p| pair(p, mid.exp()).0).sum();
+            let s: f64 = free_in
+                .iter()
+                .chain(&free_out)
+                .map(|&p| pair(p, mid.exp()).0)
+                .sum();
             if s < target as f64 {
                 lo = mid;
             } else {

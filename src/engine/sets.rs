@@ -23,6 +23,8 @@ pub(crate) struct Cells<'a> {
     pub t: f64,
     /// Mass each trim may drop.
     pub eps: f64,
+    /// Laws at least this wide on both sides are convolved by FFT (`law::FFT_MIN_LEN`).
+    pub fft_min: usize,
 }
 
 impl Cells<'_> {
@@ -49,11 +51,14 @@ impl Cells<'_> {
         }
         let mid = a + (b - a) / 2;
         let (l, r) = if b - a >= PARALLEL_CELLS {
-            rayon::join(|| self.tree(len, index, a, mid), || self.tree(len, index, mid, b))
+            rayon::join(
+                || self.tree(len, index, a, mid),
+                || self.tree(len, index, mid, b),
+            )
         } else {
             (self.tree(len, index, a, mid), self.tree(len, index, mid, b))
         };
-        let mut law = convolve(&l, &r);
+        let mut law = convolve(&l, &r, self.fft_min);
         law.trim(self.eps);
         law
     }
@@ -71,17 +76,30 @@ mod tests {
 
     #[test]
     fn product_tree_matches_one_long_fold() {
-        let values: Vec<f64> = (0..1000).map(|i| ((i * 7919 % 997) as f64 + 0.5) / 1000.0).collect();
-        let cells = Cells { values: &values, t: 0.8, eps: 0.0 };
+        let values: Vec<f64> = (0..1000)
+            .map(|i| ((i * 7919 % 997) as f64 + 0.5) / 1000.0)
+            .collect();
+        let cells = Cells {
+            values: &values,
+            t: 0.8,
+            eps: 0.0,
+            fft_min: usize::MAX,
+        };
         let tree = cells.law_of_span(0, values.len());
         // reference: the plain one-cell-at-a-time fold (naive reference kept for this purpose)
         let mut fold = Law::unit();
         fold.add_cells(values.iter().map(|&p| tilted(p, 0.8)));
-        assert!(tree.len() <= fold.len(), "trimming with budget 0 drops only exact zeros");
+        assert!(
+            tree.len() <= fold.len(),
+            "trimming with budget 0 drops only exact zeros"
+        );
         let peak = fold.values.iter().cloned().fold(0.0, f64::max);
         for k in 0..fold.len() as u64 {
             let (a, b) = (tree.at(k), fold.at(k));
-            assert!((a - b).abs() <= 1e-13 * peak + 1e-12 * b, "k {k}: {a} vs {b}");
+            assert!(
+                (a - b).abs() <= 1e-13 * peak + 1e-12 * b,
+                "k {k}: {a} vs {b}"
+            );
         }
         assert_eq!(trims_for(1000), 31);
     }

@@ -37,9 +37,18 @@ pub struct ZoneSummary {
 }
 
 /// Summarises a pmf over `offset ..` that sums to one.
-pub(crate) fn summarise(offset: u64, pmf: &[f64], level: f64, thresholds: &[u64]) -> (f64, f64, u64, u64, Interval, Vec<(u64, f64)>) {
+pub(crate) fn summarise(
+    offset: u64,
+    pmf: &[f64],
+    level: f64,
+    thresholds: &[u64],
+) -> (f64, f64, u64, u64, Interval, Vec<(u64, f64)>) {
     let mean_rel: f64 = pmf.iter().enumerate().map(|(i, &p)| i as f64 * p).sum();
-    let var: f64 = pmf.iter().enumerate().map(|(i, &p)| (i as f64 - mean_rel).powi(2) * p).sum();
+    let var: f64 = pmf
+        .iter()
+        .enumerate()
+        .map(|(i, &p)| (i as f64 - mean_rel).powi(2) * p)
+        .sum();
     let mut mode = 0;
     for (i, &p) in pmf.iter().enumerate() {
         if p > pmf[mode] {
@@ -53,11 +62,18 @@ pub(crate) fn summarise(offset: u64, pmf: &[f64], level: f64, thresholds: &[u64]
         cdf.push(acc);
     }
     let quantile = |target: f64| -> u64 {
-        let i = cdf.iter().position(|&c| c >= target).unwrap_or(pmf.len() - 1);
+        let i = cdf
+            .iter()
+            .position(|&c| c >= target)
+            .unwrap_or(pmf.len() - 1);
         offset + i as u64
     };
     let median = quantile(0.5);
-    let interval = Interval { level, lower: quantile((1.0 - level) / 2.0), upper: quantile((1.0 + level) / 2.0) };
+    let interval = Interval {
+        level,
+        lower: quantile((1.0 - level) / 2.0),
+        upper: quantile((1.0 + level) / 2.0),
+    };
     // suffix[i] = sum of pmf[i..], accumulated from the far end.
     let mut suffix = vec![0.0; pmf.len() + 1];
     for i in (0..pmf.len()).rev() {
@@ -74,7 +90,14 @@ pub(crate) fn summarise(offset: u64, pmf: &[f64], level: f64, thresholds: &[u64]
             (k, p.min(1.0))
         })
         .collect();
-    (offset as f64 + mean_rel, var.sqrt(), offset + mode as u64, median, interval, exceedance)
+    (
+        offset as f64 + mean_rel,
+        var.sqrt(),
+        offset + mode as u64,
+        median,
+        interval,
+        exceedance,
+    )
 }
 
 #[cfg(test)]
@@ -85,13 +108,21 @@ mod tests {
     fn summaries_of_a_small_pmf() {
         // reference: closed form, Binomial(4, 1/2) = (1, 4, 6, 4, 1) / 16 shifted by 3
         let pmf = [1.0 / 16.0, 4.0 / 16.0, 6.0 / 16.0, 4.0 / 16.0, 1.0 / 16.0];
-        let (mean, sd, mode, median, interval, exc) = summarise(3, &pmf, 0.8, &[0, 3, 4, 7, 8, 100]);
+        let (mean, sd, mode, median, interval, exc) =
+            summarise(3, &pmf, 0.8, &[0, 3, 4, 7, 8, 100]);
         assert!((mean - 5.0).abs() < 1e-15);
         assert!((sd - 1.0).abs() < 1e-15);
         assert_eq!((mode, median), (5, 5));
         // CDF: 1/16, 5/16, 11/16, 15/16, 1; (1-0.8)/2 = 0.1 -> k = 4; (1+0.8)/2 = 0.9 -> k = 6
         assert_eq!((interval.lower, interval.upper), (4, 6));
-        let want = [(0, 1.0), (3, 1.0), (4, 15.0 / 16.0), (7, 1.0 / 16.0), (8, 0.0), (100, 0.0)];
+        let want = [
+            (0, 1.0),
+            (3, 1.0),
+            (4, 15.0 / 16.0),
+            (7, 1.0 / 16.0),
+            (8, 0.0),
+            (100, 0.0),
+        ];
         for ((k, p), (wk, wp)) in exc.iter().zip(want) {
             assert_eq!(*k, wk);
             assert!((p - wp).abs() < 1e-15, "k {k}: {p} vs {wp}");

