@@ -893,3 +893,36 @@ async fn the_committed_openapi_document_matches_the_code() {
     }
     assert!(spec["paths"]["/jobs/{jobId}"]["delete"].is_object());
 }
+
+#[test]
+fn eval_refuses_raster_references_with_a_clear_message() {
+    let dir = std::env::temp_dir().join(format!("zonetally-ref-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let file = dir.join("by-ref.json");
+    let doc = json!({"raster": {"ref": format!("sha256:{}", "ab".repeat(32))}, "zones": [{"id": "a", "cells": [0]}], "evidence": {"total": 1}});
+    std::fs::write(&file, serde_json::to_vec(&doc).unwrap()).unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_zonetally"))
+        .arg("eval")
+        .arg(&file)
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        err.contains("/raster/ref") && err.contains("inline"),
+        "{err}"
+    );
+}
+
+#[test]
+fn the_openapi_subcommand_prints_the_committed_document() {
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_zonetally"))
+        .arg("openapi")
+        .output()
+        .unwrap();
+    assert!(out.status.success());
+    assert_eq!(
+        String::from_utf8(out.stdout).unwrap(),
+        include_str!("../openapi/openapi.json")
+    );
+}

@@ -713,3 +713,69 @@ pub async fn dismiss(
     job.updated = SystemTime::now();
     Ok(Json(status_info(&job)))
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::api::config::Config;
+
+    struct Faulty;
+
+    impl Prepared for Faulty {
+        fn estimated_cost(&self) -> f64 {
+            1.0
+        }
+        fn cells(&self) -> u64 {
+            1
+        }
+        fn run(self: Box<Self>, _: &AppState, _: &Control) -> Result<Bytes, ApiError> {
+            panic!("index out of bounds in a kernel")
+        }
+    }
+
+    #[tokio::test]
+    async fn a_panicking_kernel_fails_its_job_with_a_generic_500() {
+        let state = AppState::new(Config {
+            threads: 1,
+            ..Config::default()
+        })
+        .unwrap();
+        let process = state.process("zone-counts").unwrap();
+        let resp = start_job(
+            &state,
+            process,
+            ResponseMode::Raw,
+            Box::new(Faulty),
+            Arc::new(Control::new()),
+        )
+        .unwrap();
+        assert_eq!(resp.status(), StatusCode::CREATED);
+        let id = resp.headers()[header::LOCATION]
+            .to_str()
+            .unwrap()
+            .trim_start_matches("/jobs/")
+            .to_string();
+        let mut job = state.store().get(&id).unwrap();
+        for _ in 0..1000 {
+            if job.state.is_finished() {
+                break;
+            }
+            tokio::time::sleep(std::time::Duration::from_millis(5)).await;
+            job = state.store().get(&id).unwrap();
+        }
+        assert_eq!(job.state, JobState::Failed);
+        match job.outcome {
+            Some(Outcome::Failure { status, body }) => {
+                assert_eq!(status, 500);
+                let text = String::from_utf8(body.to_vec()).unwrap();
+                assert!(
+                    !text.contains("index out of bounds"),
+                    "5xx bodies stay generic: {text}"
+                );
+                assert!(text.contains("/problems/internal"));
+            }
+            other => panic!("expected a failure, got {other:?}"),
+        }
+        assert_eq!(state.pool().stats().panics, 1);
+    }
+}

@@ -120,7 +120,7 @@ pub struct JobFilter {
 
 impl JobFilter {
     fn admits(&self, job: &Job) -> bool {
-        (self.processes.is_empty() || self.processes.iter().any(|p| *p == job.process))
+        (self.processes.is_empty() || self.processes.contains(&job.process))
             && (self.states.is_empty() || self.states.contains(&job.state))
     }
 }

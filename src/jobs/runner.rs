@@ -183,3 +183,64 @@ impl Drop for CancelOnDrop {
         }
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[tokio::test]
+    async fn a_panic_is_caught_and_reported() {
+        let pool = Pool::new(1, 4).unwrap();
+        let rx = pool
+            .submit(Arc::new(Control::new()), |_| -> u32 {
+                panic!("kernel fault at node 7")
+            })
+            .unwrap();
+        match rx.await.unwrap() {
+            Finished::Panicked(cause) => assert!(cause.contains("node 7"), "{cause}"),
+            other => panic!("expected a caught panic, got {other:?}"),
+        }
+        let ok = pool.submit(Arc::new(Control::new()), |_| 41 + 1).unwrap();
+        assert!(
+            matches!(ok.await.unwrap(), Finished::Done(42)),
+            "the pool must survive a panic"
+        );
+        assert_eq!(pool.stats().panics, 1);
+        assert_eq!(pool.stats().running, 0);
+    }
+
+    #[tokio::test]
+    async fn cancelled_work_is_not_run_and_drop_guards_cancel() {
+        let pool = Pool::new(1, 4).unwrap();
+        let control = Arc::new(Control::new());
+        {
+            let _guard = CancelOnDrop::new(control.clone());
+        }
+        assert!(control.is_cancelled());
+        let rx = pool
+            .submit(control, |_| unreachable!("cancelled work must not run"))
+            .unwrap();
+        assert!(matches!(rx.await.unwrap(), Finished::<()>::Cancelled));
+        let kept = Arc::new(Control::new());
+        let mut guard = CancelOnDrop::new(kept.clone());
+        guard.disarm();
+        drop(guard);
+        assert!(!kept.is_cancelled());
+    }
+
+    #[test]
+    fn submissions_beyond_capacity_are_refused() {
+        let pool = Pool::new(1, 1).unwrap();
+        let (tx, rx) = std::sync::mpsc::channel::<()>();
+        let first = pool.submit(Arc::new(Control::new()), move |_| {
+            let _ = rx.recv();
+        });
+        assert!(first.is_ok());
+        assert_eq!(
+            pool.submit(Arc::new(Control::new()), |_| ()).unwrap_err(),
+            QueueFull { capacity: 1 }
+        );
+        assert_eq!(pool.stats().rejected, 1);
+        drop(tx);
+    }
+}
