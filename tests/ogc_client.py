@@ -41,7 +41,7 @@ def wait_ready(base, seconds=15.0):
 def request_document():
     w, h = 12, 10
     values = [round(0.05 + 0.55 * (((i * 7919) % 101) / 100.0), 6) for i in range(w * h)]
-    values[37] = None
+    values[118] = None  # nodata outside every zone
     return {
         "raster": {"width": w, "height": h, "values": values},
         "zones": [
@@ -66,7 +66,9 @@ def eval_document(binary, doc):
     with tempfile.NamedTemporaryFile("w", suffix=".json", delete=False) as f:
         json.dump(doc, f)
         path = f.name
-    out = subprocess.run([binary, "eval", path], check=True, capture_output=True, text=True)
+    out = subprocess.run([binary, "eval", path], capture_output=True, text=True)
+    if out.returncode != 0:
+        raise SystemExit(f"zonetally eval failed: {out.stderr}")
     return json.loads(out.stdout)
 
 

@@ -46,7 +46,7 @@ fn request(w: u32, side: u32, count: u32, total: u64) -> Value {
 #[ignore = "writes the wrk body; run by hand"]
 fn write_small_request() {
     // 100 x 100 raster, 20 zones of 10 x 10.
-    let doc = request(100, 10, 20, 600);
+    let doc = request(100, 10, 20, 1200);
     let body = serde_json::to_vec(&json!({"inputs": doc})).unwrap();
     std::fs::write("/tmp/zonetally-small.json", &body).unwrap();
     println!("wrote /tmp/zonetally-small.json ({} bytes)", body.len());

@@ -30,7 +30,9 @@ use axum::Router;
 use tower_http::compression::CompressionLayer;
 use tower_http::cors::{AllowOrigin, CorsLayer};
 use tower_http::request_id::{MakeRequestUuid, PropagateRequestIdLayer, SetRequestIdLayer};
-use tower_http::trace::TraceLayer;
+use tower_http::trace::{DefaultOnResponse, TraceLayer};
+use tower_http::LatencyUnit;
+use tracing::Level;
 use utoipa::OpenApi;
 use utoipa_axum::router::OpenApiRouter;
 use utoipa_axum::routes;
@@ -154,9 +156,13 @@ pub fn router(state: AppState) -> Router {
         );
     }
     app.layer(PropagateRequestIdLayer::new(request_id.clone()))
-        .layer(TraceLayer::new_for_http().make_span_with(|req: &Request| {
-            let id = req.headers().get("x-request-id").and_then(|v| v.to_str().ok()).unwrap_or("");
-            tracing::info_span!("request", method = %req.method(), path = %req.uri().path(), request_id = %id)
-        }))
+        .layer(
+            TraceLayer::new_for_http()
+                .make_span_with(|req: &Request| {
+                    let id = req.headers().get("x-request-id").and_then(|v| v.to_str().ok()).unwrap_or("");
+                    tracing::info_span!("request", method = %req.method(), path = %req.uri().path(), request_id = %id)
+                })
+                .on_response(DefaultOnResponse::new().level(Level::INFO).latency_unit(LatencyUnit::Micros)),
+        )
         .layer(SetRequestIdLayer::new(request_id, MakeRequestUuid))
 }
