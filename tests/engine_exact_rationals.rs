@@ -372,7 +372,6 @@ fn total_check_is_exact_on_the_slope() {
 }
 
 #[test]
-#[ignore = "engine defect: cell_posterior is wrong on small rasters (slope, total 3, cell 1: reported 0.0186560441, exact 0.0185216670)"]
 fn cell_posterior_is_exact_on_the_slope() {
     let raster = slope();
     let cells = valid_cells(&raster);

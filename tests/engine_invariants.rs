@@ -568,7 +568,6 @@ fn impossible_totals_and_empty_zone_lists_are_specific_errors() {
 }
 
 #[test]
-#[ignore = "engine defect: cell_posterior is wrong on small rasters and at loose tolerances (2x1 raster p = [0.1, 0.3], total 1: cell 1 reported 1.0, exact 0.27/0.34 = 0.794; error_bound up to 2)"]
 fn cell_posterior_matches_singleton_zones() {
     // reference: engine::reference::conditional_pmf on the singleton zone {cell}, P(N = 1)
     let mut rng = ChaCha8Rng::seed_from_u64(5);
@@ -577,19 +576,35 @@ fn cell_posterior_matches_singleton_zones() {
             continue;
         };
         let norm = Normaliser::new(&raster, total, &Control::new()).unwrap();
+        // The naive reference costs O(cells^2) per cell: check every cell of small rasters and
+        // an evenly spread sample of about 60 on the larger ones.
+        let cells = valid_cells(&raster);
+        let stride = cells.len().div_ceil(60).max(1);
+        let wanted: std::collections::HashMap<u32, f64> = cells
+            .iter()
+            .step_by(stride)
+            .map(|&c| {
+                (
+                    c,
+                    reference::conditional_pmf(&raster, &[c], total).unwrap()[1],
+                )
+            })
+            .collect();
         for tolerance in [1e-13, 1e-6, 1e-4] {
             let settings = Settings::new(0.9, vec![], tolerance, true).unwrap();
             let all = on_pool(|| {
                 engine::cell_posterior(&raster, None, &norm, &settings, &Control::new())
             })
             .unwrap();
-            let cells = valid_cells(&raster);
             assert_eq!(all.cells.len(), cells.len());
             let allowed = all.error_bound + reference_error(cells.len());
             let mut sum = 0.0;
             for &(c, prior, post) in &all.cells {
                 assert_eq!(prior, raster.values()[c as usize]);
-                let want = reference::conditional_pmf(&raster, &[c], total).unwrap()[1];
+                sum += post;
+                let Some(&want) = wanted.get(&c) else {
+                    continue;
+                };
                 assert!(
                 (post - want).abs() <= allowed,
                 "{w}x{h}, total {total}, cell {c} (p = {prior}): posterior {post}, reference {want}, bound {:e}",
@@ -606,7 +621,6 @@ fn cell_posterior_matches_singleton_zones() {
                         "{what}: reported {post}, reference {want}"
                     );
                 }
-                sum += post;
             }
             // reference: closed form, the posteriors of all cells sum to the observed total
             // Each posterior is within the contract of its exact value.
@@ -624,7 +638,9 @@ fn cell_posterior_matches_singleton_zones() {
                     .unwrap();
             for (&c, &(c2, _, post)) in listed.iter().zip(&some.cells) {
                 assert_eq!(c, c2);
-                let want = reference::conditional_pmf(&raster, &[c], total).unwrap()[1];
+                let Some(&want) = wanted.get(&c) else {
+                    continue;
+                };
                 assert!(
                     (post - want).abs() <= some.error_bound + reference_error(cells.len()),
                     "listed cell {c}"
@@ -635,7 +651,6 @@ fn cell_posterior_matches_singleton_zones() {
 }
 
 #[test]
-#[ignore = "engine defect: cell_posterior gives 1/3, 1/2, 1 here instead of 1/3 each"]
 fn cell_posterior_of_three_fair_cells_with_one_event() {
     // reference: closed form; by symmetry each of three exchangeable cells holds the one event
     // with probability 1/3

@@ -245,6 +245,9 @@ impl Built {
 struct Pass<'a> {
     plan: &'a Plan,
     zones: &'a [Zone],
+    /// Keep each leaf's whole range [target - cells, target] (the cell posterior's leave-one-out
+    /// reads all of it) instead of the range its trimmed law needs.
+    whole_leaves: bool,
     sets: &'a Sets,
     cells: Cells<'a>,
     target: u64,
@@ -288,10 +291,15 @@ impl Pass<'_> {
                 } else {
                     self.trimmed(convolve(&own_cells, &direct.law_of(shared), usize::MAX))
                 };
-                let range = (
-                    self.target.saturating_sub(own.hi()),
-                    self.target.saturating_sub(own.lo),
-                );
+                let range = if self.whole_leaves {
+                    let cells = self.assigned(node).len() as u64;
+                    (self.target.saturating_sub(cells), self.target)
+                } else {
+                    (
+                        self.target.saturating_sub(own.hi()),
+                        self.target.saturating_sub(own.lo),
+                    )
+                };
                 Built::Leaf {
                     zone,
                     private: own_cells,
@@ -383,11 +391,27 @@ impl Pass<'_> {
     }
 }
 
-/// The numerators g(k) = L(k) O(target - k) over L's window, their rounding count, and the
-/// bound on their summed absolute error from FFT steps.
-fn numerators(own: &Law, outside: Option<&Law>, target: u64) -> (u64, Vec<f64>, u64, f64) {
+/// The numerators g(k) = L(k) O(target - k) of one zone, with what their bound needs.
+struct Numerators {
+    lo: u64,
+    g: Vec<f64>,
+    /// Roundings behind each value.
+    rounding: u64,
+    /// Bound on the summed absolute error from FFT steps.
+    fft: f64,
+    /// Mass trimmed anywhere in the history of L and O.
+    dropped: f64,
+}
+
+fn numerators(own: &Law, outside: Option<&Law>, target: u64) -> Numerators {
     let Some(o) = outside else {
-        return (own.lo, vec![0.0; own.len()], own.rounding, 0.0);
+        return Numerators {
+            lo: own.lo,
+            g: vec![0.0; own.len()],
+            rounding: own.rounding,
+            fft: 0.0,
+            dropped: 1.0,
+        };
     };
     let g = (0..own.len())
         .map(|i| {
@@ -401,14 +425,24 @@ fn numerators(own: &Law, outside: Option<&Law>, target: u64) -> (u64, Vec<f64>, 
         .collect();
     // sum_k |L(k) dO| + |dL(k) O| <= E_O sum L + len E_L max O, with sum L, max O <= 1.
     let fft = o.abs_err + own.len() as f64 * own.abs_err;
-    (own.lo, g, own.rounding + o.rounding + 1, fft)
+    Numerators {
+        lo: own.lo,
+        g,
+        rounding: own.rounding + o.rounding + 1,
+        fft,
+        dropped: own.dropped + o.dropped,
+    }
 }
 
-/// Certified L1 bound of a normalised pmf built from numerators `g` (sum `s`, `k` roundings each,
-/// summed absolute FFT error `fft`). Returns (bound, measured truncation share).
+/// Certified L1 bound of the pmf g / sum g, and the measured truncation share (for retries).
 ///
-/// With g~ the numerators in exact arithmetic, g~ <= g + e (|e| summing to at most `fft`), and
-/// ||g~/sum g~ - g/Z||_1 <= 2 (Z - sum g~ + 2 fft) / Z; Z is bracketed by the normaliser.
+/// With g~ the numerators in exact arithmetic (every kernel only drops non-negative mass, so
+/// g~ <= g + e where e is the FFT error, summing to at most `fft`),
+/// ||g~/sum g~ - g/Z||_1 <= 2 (Z - sum g~ + 2 fft) / Z. The deficit Z - sum g~ is bounded two
+/// ways, both rigorous: a posteriori by the normaliser's bracket on Z less the computed sum, and
+/// a priori by the mass trimmed along the way (each trimmed unit meets a complementary law whose
+/// values are at most 1). The smaller is used; the rounding term gamma(2k + len + 2) covers the
+/// relative error of the values and of their normalisation.
 fn certify(
     normaliser: &Normaliser,
     s: f64,
@@ -416,13 +450,16 @@ fn certify(
     len: usize,
     z_mid: f64,
     fft: f64,
+    dropped: f64,
 ) -> (f64, f64) {
     let chain = k + len as u64;
     let lower_sum = s * (1.0 - gamma(chain));
-    let gap = (normaliser.z_hi - lower_sum + 2.0 * fft).max(0.0);
+    let posterior_gap = (normaliser.z_hi - lower_sum).max(0.0);
+    let gap = posterior_gap.min(dropped * (1.0 + 1e-9)) + 2.0 * fft;
     let truncation = 2.0 * gap / normaliser.z_lo;
     let rounding = gamma(2 * k + len as u64 + 2);
-    let measured = 2.0 * (z_mid - s).max(0.0) / z_mid;
+    // What the windows measurably lost, beyond what rounding alone could explain.
+    let measured = (2.0 * (z_mid - s) / z_mid - 4.0 * gamma(chain)).max(0.0);
     (
         (truncation + rounding) * (1.0 + 8.0 * UNIT_ROUNDOFF),
         measured,
@@ -516,7 +553,7 @@ pub(crate) fn execute_with(
         attempt += 1;
         let results = run_tree(
             plan,
-            zones,
+            (zones, false),
             &sets,
             values,
             tilt,
@@ -524,10 +561,18 @@ pub(crate) fn execute_with(
             (eps, fft_min),
             control,
             &|zone, own, outside| {
-                let (lo, g, k, fft) = numerators(own, outside, normaliser.target);
-                let s: f64 = g.iter().sum();
-                let (bound, measured) = certify(normaliser, s, k, g.len(), z_mid, fft);
-                (zone, lo, g, s, bound, measured)
+                let n = numerators(own, outside, normaliser.target);
+                let s: f64 = n.g.iter().sum();
+                let (bound, measured) = certify(
+                    normaliser,
+                    s,
+                    n.rounding,
+                    n.g.len(),
+                    z_mid,
+                    n.fft,
+                    n.dropped,
+                );
+                (zone, n.lo, n.g, s, bound, measured)
             },
         )?;
         let worst = results.iter().map(|r| r.5).fold(0.0, f64::max);
@@ -593,7 +638,7 @@ fn normalised(lo: u64, g: Vec<f64>, s: f64) -> (u64, Vec<f64>) {
 #[allow(clippy::too_many_arguments)]
 fn run_tree<T: Send, F>(
     plan: &Plan,
-    zones: &[Zone],
+    (zones, whole_leaves): (&[Zone], bool),
     sets: &Sets,
     values: &[f64],
     tilt: Tilt,
@@ -608,6 +653,7 @@ where
     let pass = Pass {
         plan,
         zones,
+        whole_leaves,
         sets,
         cells: Cells {
             values,
@@ -748,7 +794,7 @@ pub fn cell_posterior(
         let z_mid = 0.5 * (normaliser.z_lo + normaliser.z_hi);
         let results = run_tree(
             &plan,
-            &blocks,
+            (&blocks, true),
             &sets,
             values,
             tilt,
@@ -813,8 +859,14 @@ fn leave_one_out(
         next.add_cells([pairs[i + 1]]);
         suffix[i] = next;
     }
-    // f = outside law folded with cells 0..i (on the outside law's own range).
-    let mut f = o.clone();
+    // f = outside law folded with cells 0..i-1, held on the whole range the block can need,
+    // [target - b, target], zero where the outside law was not kept.
+    let lo = target.saturating_sub(b as u64);
+    let mut f = Law {
+        lo,
+        values: (lo..=target).map(|j| o.at(j)).collect(),
+        ..o.clone()
+    };
     let mut out = Vec::with_capacity(b);
     for (i, &c) in block.iter().enumerate() {
         let suf = &suffix[i];
@@ -834,7 +886,7 @@ fn leave_one_out(
         let g0 = r * at(target);
         let s = g0 + g1;
         let k = f.rounding + suf.rounding + suf.len() as u64 + 1;
-        let (bound, _) = certify(normaliser, s, k, 2, z_mid, 2.0 * f.abs_err);
+        let (bound, _) = certify(normaliser, s, k, 2, z_mid, 2.0 * f.abs_err, f.dropped);
         out.push((c, if s > 0.0 { g1 / s } else { q }, bound.min(2.0)));
         // Fold cell i into f, keeping f's range: values below the range are never needed again.
         let lo = f.lo;

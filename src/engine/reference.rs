@@ -61,6 +61,7 @@ pub fn conditional_pmf(raster: &Raster, zone: &[u32], total: u64) -> Option<Vec<
     };
     let fold = |ps: &[f64]| {
         let mut law = Law::unit();
+        let mut next = Vec::with_capacity(ps.len() + 1);
         for &p in ps {
             let (q, r) = if target == 0 {
                 (0.0, 1.0)
@@ -69,13 +70,13 @@ pub fn conditional_pmf(raster: &Raster, zone: &[u32], total: u64) -> Option<Vec<
             } else {
                 pair(p, t)
             };
-            let v = &law.values;
-            let mut next = vec![0.0; v.len() + 1];
-            for (j, &x) in v.iter().enumerate() {
+            next.clear();
+            next.resize(law.values.len() + 1, 0.0);
+            for (j, &x) in law.values.iter().enumerate() {
                 next[j] += x * r;
                 next[j + 1] += x * q;
             }
-            law.values = next;
+            std::mem::swap(&mut law.values, &mut next);
         }
         law
     };
