@@ -5,6 +5,7 @@
 //! `jobs` owns where jobs live and the compute pool they run on.
 
 pub mod api;
+pub mod bench;
 pub mod cli;
 pub mod engine;
 pub mod jobs;

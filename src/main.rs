@@ -24,6 +24,18 @@ enum Command {
     Serve(Box<zonetally::Config>),
     /// Print the service's OpenAPI document (what `openapi/openapi.json` must hold).
     Openapi,
+    /// Run the benchmark workloads against the baselines and print the table.
+    Bench {
+        /// Run only this workload (see --list); all of them by default.
+        #[arg(long)]
+        workload: Option<String>,
+        /// Also write every measured row as JSON to this file.
+        #[arg(long)]
+        json: Option<std::path::PathBuf>,
+        /// List the workloads and exit.
+        #[arg(long)]
+        list: bool,
+    },
 }
 
 fn main() {
@@ -54,6 +66,11 @@ fn main() {
                 std::process::exit(1);
             }
         }
+        Command::Bench {
+            workload,
+            json,
+            list,
+        } => bench(workload.as_deref(), json.as_deref(), list),
     }
 }
 
@@ -68,5 +85,26 @@ fn init_tracing(json: bool) {
         builder.json().init();
     } else {
         builder.init();
+    }
+}
+
+fn bench(workload: Option<&str>, json: Option<&std::path::Path>, list: bool) {
+    use zonetally::bench;
+    if list {
+        print!("{}", bench::list());
+        return;
+    }
+    let fail = |message: String, code: i32| -> ! {
+        eprintln!("zonetally: {message}");
+        std::process::exit(code);
+    };
+    let workloads = bench::select(workload).unwrap_or_else(|e| fail(e, 2));
+    let report = bench::run(&workloads, &mut std::io::stderr()).unwrap_or_else(|e| fail(e, 1));
+    print!("{}", bench::render(&report));
+    if let Some(path) = json {
+        let text = serde_json::to_string_pretty(&report)
+            .unwrap_or_else(|e| fail(format!("cannot encode the report: {e}"), 1));
+        std::fs::write(path, text + "\n")
+            .unwrap_or_else(|e| fail(format!("cannot write --json `{}`: {e}", path.display()), 1));
     }
 }
