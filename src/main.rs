@@ -20,6 +20,10 @@ enum Command {
         /// Path of the request document, or - for standard input.
         request: String,
     },
+    /// Run the HTTP service (OGC API - Processes). Every flag is also a ZONETALLY_* variable.
+    Serve(Box<zonetally::Config>),
+    /// Print the service's OpenAPI document (what `openapi/openapi.json` must hold).
+    Openapi,
     /// Run the benchmark workloads against the baselines and print the table.
     Bench {
         /// Run only this workload (see --list); all of them by default.
@@ -44,11 +48,43 @@ fn main() {
                 std::process::exit(e.code);
             }
         },
+        Command::Openapi => print!("{}", zonetally::api::openapi_json()),
+        Command::Serve(config) => {
+            init_tracing(config.log_json);
+            let runtime = match tokio::runtime::Builder::new_multi_thread()
+                .enable_all()
+                .build()
+            {
+                Ok(r) => r,
+                Err(e) => {
+                    eprintln!("zonetally: cannot start the async runtime: {e}");
+                    std::process::exit(1);
+                }
+            };
+            if let Err(e) = runtime.block_on(zonetally::api::server::serve(*config)) {
+                eprintln!("zonetally: {e}");
+                std::process::exit(1);
+            }
+        }
         Command::Bench {
             workload,
             json,
             list,
         } => bench(workload.as_deref(), json.as_deref(), list),
+    }
+}
+
+fn init_tracing(json: bool) {
+    use tracing_subscriber::EnvFilter;
+    let filter =
+        EnvFilter::try_from_env("ZONETALLY_LOG").unwrap_or_else(|_| EnvFilter::new("info"));
+    let builder = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr);
+    if json {
+        builder.json().init();
+    } else {
+        builder.init();
     }
 }
 

@@ -1,4 +1,168 @@
-//! HTTP and the wire format: request and results documents, problem documents, routes.
-//! The only layer that knows JSON.
+//! HTTP and the wire format: request and results documents, problem documents, routes, the
+//! OpenAPI document. The only layer that knows JSON and HTTP.
+//!
+//! Routes and spec come from one source: every handler carries its `#[utoipa::path]` and is
+//! registered through `utoipa_axum::routes!`, so the served `/openapi.json` lists exactly the
+//! routes the router has. The committed copy lives in `openapi/openapi.json`
+//! (`zonetally openapi > openapi/openapi.json` regenerates it; a test fails when they differ).
 
+pub mod body;
+pub mod cache;
+pub mod config;
+pub mod metrics;
+pub mod ogc;
+pub mod ops;
+pub mod problem;
+pub mod processes;
+pub mod rasters;
+pub mod server;
+pub mod state;
 pub mod wire;
+
+use std::sync::OnceLock;
+use std::time::Duration;
+
+use axum::extract::{DefaultBodyLimit, Request, State};
+use axum::http::{HeaderName, HeaderValue, Method, Uri};
+use axum::middleware::{self, Next};
+use axum::response::{IntoResponse, Response};
+use axum::Router;
+use tower_http::compression::CompressionLayer;
+use tower_http::cors::{AllowOrigin, CorsLayer};
+use tower_http::request_id::{MakeRequestUuid, PropagateRequestIdLayer, SetRequestIdLayer};
+use tower_http::trace::{DefaultOnResponse, TraceLayer};
+use tower_http::LatencyUnit;
+use tracing::Level;
+use utoipa::OpenApi;
+use utoipa_axum::router::OpenApiRouter;
+use utoipa_axum::routes;
+
+use problem::ApiError;
+use state::AppState;
+
+#[derive(OpenApi)]
+#[openapi(
+    info(
+        title = "zonetally",
+        description = "Conditional zone-count distributions from a probability raster and an observed total, as OGC API - Processes - Part 1: Core 1.0. Every error is an RFC 9457 problem document.",
+        license(name = "MIT OR Apache-2.0")
+    ),
+    components(schemas(
+        problem::Problem,
+        wire::EvalRequest,
+        wire::ResultsDocument,
+        wire::PosteriorDocument,
+        wire::PosteriorInputs
+    ))
+)]
+struct ApiDoc;
+
+fn routes() -> OpenApiRouter<AppState> {
+    OpenApiRouter::with_openapi(ApiDoc::openapi())
+        .routes(routes!(ogc::landing))
+        .routes(routes!(ogc::conformance))
+        .routes(routes!(ogc::processes))
+        .routes(routes!(ogc::process))
+        .routes(routes!(ogc::execute))
+        .routes(routes!(ogc::jobs))
+        .routes(routes!(ogc::job, ogc::dismiss))
+        .routes(routes!(ogc::results))
+        .routes(routes!(rasters::post_raster))
+        .routes(routes!(rasters::get_raster))
+        .routes(routes!(ops::healthz))
+        .routes(routes!(ops::readyz))
+        .routes(routes!(ops::metrics))
+        .routes(routes!(ops::openapi))
+        .routes(routes!(ops::demo_page))
+        .routes(routes!(ops::demo_scenario))
+}
+
+/// The OpenAPI document, pretty-printed, as served and as committed.
+pub fn openapi_json() -> &'static str {
+    static DOC: OnceLock<String> = OnceLock::new();
+    DOC.get_or_init(|| {
+        let (_, api) = routes().split_for_parts();
+        let mut s = api
+            .to_pretty_json()
+            .unwrap_or_else(|e| format!("{{\"error\": \"{e}\"}}"));
+        s.push('\n');
+        s
+    })
+}
+
+async fn not_found(uri: Uri) -> ApiError {
+    ApiError::NotFound {
+        path: uri.path().to_string(),
+    }
+}
+
+async fn method_not_allowed() -> ApiError {
+    ApiError::MethodNotAllowed
+}
+
+/// Answers 504 when a request runs past the limit; dropping the handler's future cancels its
+/// computation (see `jobs::CancelOnDrop`).
+async fn time_limit(State(state): State<AppState>, req: Request, next: Next) -> Response {
+    let limit = state.config().request_timeout();
+    match tokio::time::timeout(limit, next.run(req)).await {
+        Ok(resp) => resp,
+        Err(_) => ApiError::Timeout {
+            seconds: limit.as_secs_f64(),
+        }
+        .into_response(),
+    }
+}
+
+/// The whole service as a router: routes, problem-shaped fallbacks, and the middleware stack
+/// (request ids, tracing, CORS, gzip, metrics, time limit, body limit).
+pub fn router(state: AppState) -> Router {
+    let (router, _) = routes().split_for_parts();
+    let config = state.config().clone();
+    let request_id = HeaderName::from_static("x-request-id");
+    let mut app = router
+        .fallback(not_found)
+        .method_not_allowed_fallback(method_not_allowed)
+        .route_layer(middleware::from_fn_with_state(state.clone(), time_limit))
+        .route_layer(middleware::from_fn_with_state(
+            state.clone(),
+            metrics::record,
+        ))
+        .layer(DefaultBodyLimit::max(config.max_body_bytes))
+        .layer(CompressionLayer::new().gzip(true))
+        .with_state(state);
+    if !config.cors_origins.is_empty() {
+        let origins: Vec<HeaderValue> = config
+            .cors_origins
+            .iter()
+            .filter_map(|o| HeaderValue::from_str(o.trim()).ok())
+            .collect();
+        app = app.layer(
+            CorsLayer::new()
+                .allow_origin(AllowOrigin::list(origins))
+                .allow_methods([Method::GET, Method::POST, Method::DELETE])
+                .allow_headers([
+                    axum::http::header::CONTENT_TYPE,
+                    HeaderName::from_static("prefer"),
+                    axum::http::header::IF_NONE_MATCH,
+                ])
+                .expose_headers([
+                    axum::http::header::LOCATION,
+                    axum::http::header::ETAG,
+                    axum::http::header::RETRY_AFTER,
+                    HeaderName::from_static("preference-applied"),
+                    request_id.clone(),
+                ])
+                .max_age(Duration::from_secs(600)),
+        );
+    }
+    app.layer(PropagateRequestIdLayer::new(request_id.clone()))
+        .layer(
+            TraceLayer::new_for_http()
+                .make_span_with(|req: &Request| {
+                    let id = req.headers().get("x-request-id").and_then(|v| v.to_str().ok()).unwrap_or("");
+                    tracing::info_span!("request", method = %req.method(), path = %req.uri().path(), request_id = %id)
+                })
+                .on_response(DefaultOnResponse::new().level(Level::INFO).latency_unit(LatencyUnit::Micros)),
+        )
+        .layer(SetRequestIdLayer::new(request_id, MakeRequestUuid))
+}

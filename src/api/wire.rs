@@ -6,6 +6,7 @@
 //! value, and a hint; after `decode` nothing is validated again.
 
 use serde::{Deserialize, Serialize};
+use utoipa::ToSchema;
 
 use crate::engine::{
     self, EngineError, Evaluation, Raster, Settings, TotalCheck, Zone, ZoneSummary, DEFAULT_LEVEL,
@@ -14,18 +15,77 @@ use crate::engine::{
 
 /// The raster as sent: row-major values, row 0 at the top; `null` or the `nodata` value marks
 /// cells outside the study area.
-#[derive(Clone, Debug, Deserialize, Serialize)]
+#[derive(Clone, Debug, Deserialize, Serialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RasterSpec {
     pub width: u32,
     pub height: u32,
+    /// `width * height` probabilities in [0, 1], row-major; `null` for nodata.
     pub values: Vec<Option<f64>>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub nodata: Option<f64>,
 }
 
+/// A raster by content hash, as returned by `POST /rasters`.
+#[derive(Clone, Debug, Deserialize, Serialize, ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct RasterRef {
+    /// `sha256:` and 64 lowercase hex digits.
+    #[serde(rename = "ref")]
+    pub reference: String,
+}
+
+/// The `raster` field: inline, or a reference to a raster the service holds.
+#[derive(Clone, Debug, Deserialize, Serialize, ToSchema)]
+#[serde(untagged, try_from = "RasterFields")]
+pub enum RasterInput {
+    Inline(RasterSpec),
+    Ref(RasterRef),
+}
+
+impl From<RasterSpec> for RasterInput {
+    fn from(spec: RasterSpec) -> Self {
+        RasterInput::Inline(spec)
+    }
+}
+
+/// Every field either form may carry; `TryFrom` picks the form, so a mistake names the field.
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RasterFields {
+    #[serde(rename = "ref")]
+    reference: Option<String>,
+    width: Option<u32>,
+    height: Option<u32>,
+    values: Option<Vec<Option<f64>>>,
+    nodata: Option<f64>,
+}
+
+impl TryFrom<RasterFields> for RasterInput {
+    type Error = String;
+    fn try_from(f: RasterFields) -> Result<Self, String> {
+        match (f.reference, f.width, f.height, f.values) {
+            (Some(r), None, None, None) if f.nodata.is_none() => Ok(RasterInput::Ref(RasterRef { reference: r })),
+            (Some(_), ..) => Err("a raster given by `ref` takes no other field: send either `ref` alone or `width`, `height` and `values`".into()),
+            (None, Some(width), Some(height), Some(values)) => {
+                Ok(RasterInput::Inline(RasterSpec { width, height, values, nodata: f.nodata }))
+            }
+            (None, w, h, v) => {
+                let missing: Vec<&str> = [("width", w.is_none()), ("height", h.is_none()), ("values", v.is_none())]
+                    .into_iter()
+                    .filter_map(|(n, m)| m.then_some(n))
+                    .collect();
+                Err(format!(
+                    "the raster lacks `{}`: send `width`, `height` and `values` (or `ref` from POST /rasters)",
+                    missing.join("`, `")
+                ))
+            }
+        }
+    }
+}
+
 /// A rectangle of cells: `rows` x `cols` cells from (`row`, `col`), row 0 at the top.
-#[derive(Clone, Copy, Debug, Deserialize, Serialize)]
+#[derive(Clone, Copy, Debug, Deserialize, Serialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RectSpec {
     pub row: u32,
@@ -35,7 +95,7 @@ pub struct RectSpec {
 }
 
 /// A zone: an id and either a list of cell indices or a rectangle.
-#[derive(Clone, Debug, Deserialize, Serialize)]
+#[derive(Clone, Debug, Deserialize, Serialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct ZoneSpec {
     pub id: String,
@@ -45,7 +105,7 @@ pub struct ZoneSpec {
     pub rect: Option<RectSpec>,
 }
 
-#[derive(Clone, Copy, Debug, Deserialize, Serialize)]
+#[derive(Clone, Copy, Debug, Deserialize, Serialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct EvidenceSpec {
     /// The observed number of events over all valid cells.
@@ -53,7 +113,7 @@ pub struct EvidenceSpec {
 }
 
 /// What to report. Every field is optional.
-#[derive(Clone, Debug, Default, Deserialize, Serialize)]
+#[derive(Clone, Debug, Default, Deserialize, Serialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct SummariesSpec {
     /// Credible level of the equal-tailed interval (default 0.9).
@@ -71,10 +131,10 @@ pub struct SummariesSpec {
 }
 
 /// The request document read by `zonetally eval` and taken as process inputs.
-#[derive(Clone, Debug, Deserialize, Serialize)]
+#[derive(Clone, Debug, Deserialize, Serialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct EvalRequest {
-    pub raster: RasterSpec,
+    pub raster: RasterInput,
     pub zones: Vec<ZoneSpec>,
     pub evidence: EvidenceSpec,
     #[serde(default)]
@@ -115,14 +175,14 @@ impl std::fmt::Display for DecodeError {
 }
 
 impl DecodeError {
-    fn at(pointer: impl Into<String>, detail: impl Into<String>) -> DecodeError {
+    pub fn at(pointer: impl Into<String>, detail: impl Into<String>) -> DecodeError {
         DecodeError {
             pointer: pointer.into(),
             detail: detail.into(),
             too_large: false,
         }
     }
-    fn limit(pointer: impl Into<String>, detail: impl Into<String>) -> DecodeError {
+    pub fn limit(pointer: impl Into<String>, detail: impl Into<String>) -> DecodeError {
         DecodeError {
             pointer: pointer.into(),
             detail: detail.into(),
@@ -309,10 +369,22 @@ pub fn decode_settings(spec: SummariesSpec) -> Result<Settings, DecodeError> {
     })
 }
 
-/// Decodes a whole request document.
+/// Decodes a whole request document whose raster is inline; a raster reference is an error
+/// here, as only the service holds referenced rasters.
 pub fn decode(req: EvalRequest, limits: &Limits) -> Result<Decoded, DecodeError> {
     let settings = decode_settings(req.summaries)?;
-    let raster = decode_raster(req.raster, limits)?;
+    let raster = match req.raster {
+        RasterInput::Inline(spec) => decode_raster(spec, limits)?,
+        RasterInput::Ref(r) => {
+            return Err(DecodeError::at(
+                "/raster/ref",
+                format!(
+                    "raster `{}` is a reference, which only the service (`zonetally serve`, POST /rasters) can resolve: put the raster inline (`width`, `height`, `values`)",
+                    r.reference
+                ),
+            ))
+        }
+    };
     let zones = decode_zones(req.zones, &raster, limits)?;
     Ok(Decoded {
         raster,
@@ -323,33 +395,33 @@ pub fn decode(req: EvalRequest, limits: &Limits) -> Result<Decoded, DecodeError>
 }
 
 /// The pmf of a zone: `values[i]` is P(N = offset + i).
-#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq, ToSchema)]
 pub struct PmfOut {
     pub offset: u64,
     pub values: Vec<f64>,
 }
 
-#[derive(Clone, Copy, Debug, Serialize, Deserialize, PartialEq)]
+#[derive(Clone, Copy, Debug, Serialize, Deserialize, PartialEq, ToSchema)]
 pub struct IntervalOut {
     pub level: f64,
     pub lower: u64,
     pub upper: u64,
 }
 
-#[derive(Clone, Copy, Debug, Serialize, Deserialize, PartialEq)]
+#[derive(Clone, Copy, Debug, Serialize, Deserialize, PartialEq, ToSchema)]
 pub struct ExceedanceOut {
     pub k: u64,
     pub p: f64,
 }
 
-#[derive(Clone, Copy, Debug, Serialize, Deserialize, PartialEq)]
+#[derive(Clone, Copy, Debug, Serialize, Deserialize, PartialEq, ToSchema)]
 pub struct PriorOut {
     pub mean: f64,
     pub sd: f64,
 }
 
 /// One zone's results.
-#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq, ToSchema)]
 pub struct ZoneResult {
     pub id: String,
     pub cells: usize,
@@ -366,7 +438,7 @@ pub struct ZoneResult {
 }
 
 /// The total check.
-#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq, ToSchema)]
 pub struct TotalResult {
     pub observed: u64,
     pub prior_mean: f64,
@@ -380,7 +452,7 @@ pub struct TotalResult {
 }
 
 /// The results document.
-#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq, ToSchema)]
 pub struct ResultsDocument {
     pub zones: Vec<ZoneResult>,
     pub total: TotalResult,
@@ -441,4 +513,45 @@ impl From<Evaluation> for ResultsDocument {
             total: e.total.into(),
         }
     }
+}
+
+/// One cell of the `cell-posterior` output.
+#[derive(Clone, Copy, Debug, Serialize, Deserialize, PartialEq, ToSchema)]
+pub struct CellPosteriorOut {
+    pub cell: u32,
+    /// Prior probability p of an event in the cell.
+    pub prior: f64,
+    /// P(event in the cell | observed total).
+    pub posterior: f64,
+}
+
+/// The `cell-posterior` output.
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq, ToSchema)]
+pub struct PosteriorDocument {
+    pub cells: Vec<CellPosteriorOut>,
+    /// Largest certified error bound over the cells.
+    pub error_bound: f64,
+    pub total: TotalResult,
+}
+
+/// Accuracy settings of a posterior request.
+#[derive(Clone, Debug, Default, Deserialize, ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct PosteriorSummaries {
+    /// Accuracy target (default 1e-13).
+    #[serde(default)]
+    pub tolerance: Option<f64>,
+}
+
+/// The inputs of `cell-posterior`.
+#[derive(Clone, Debug, Deserialize, ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct PosteriorInputs {
+    pub raster: RasterInput,
+    pub evidence: EvidenceSpec,
+    /// Cells to report, row-major indices; all valid cells when absent.
+    #[serde(default)]
+    pub cells: Option<Vec<u32>>,
+    #[serde(default)]
+    pub summaries: PosteriorSummaries,
 }

@@ -1,0 +1,133 @@
+//! The service's settings: every flag of `zonetally serve`, each also an environment variable
+//! `ZONETALLY_*`. Defaults are the embedded set-up (loopback, in-memory jobs).
+
+use std::net::SocketAddr;
+use std::time::Duration;
+
+use clap::Parser;
+
+use super::wire::Limits;
+
+#[derive(Clone, Debug, Parser)]
+#[command(name = "zonetally serve")]
+pub struct Config {
+    /// Address to listen on.
+    #[arg(long, env = "ZONETALLY_BIND", default_value = "127.0.0.1:8080")]
+    pub bind: SocketAddr,
+    /// Compute threads in the shared pool (0: one per core).
+    #[arg(long, env = "ZONETALLY_THREADS", default_value_t = 0)]
+    pub threads: usize,
+    /// Computations admitted at once, queued or running; beyond it requests get 503.
+    #[arg(long, env = "ZONETALLY_QUEUE", default_value_t = 64)]
+    pub queue: usize,
+    /// Seconds a finished job (and its results) is kept.
+    #[arg(long, env = "ZONETALLY_JOB_TTL", default_value_t = 3600.0)]
+    pub job_ttl: f64,
+    /// Bytes of rasters kept for reuse and for `{"ref": ...}`.
+    #[arg(long, env = "ZONETALLY_RASTER_CACHE_BYTES", default_value_t = 1 << 30)]
+    pub raster_cache_bytes: u64,
+    /// Bytes of normalisers kept, keyed by (raster hash, observed total).
+    #[arg(long, env = "ZONETALLY_NORMALISER_CACHE_BYTES", default_value_t = 256 << 20)]
+    pub normaliser_cache_bytes: u64,
+    /// Largest request body, in bytes.
+    #[arg(long, env = "ZONETALLY_MAX_BODY_BYTES", default_value_t = 64 << 20)]
+    pub max_body_bytes: usize,
+    /// Largest raster, in cells.
+    #[arg(long, env = "ZONETALLY_MAX_CELLS", default_value_t = 25_000_000)]
+    pub max_cells: u64,
+    /// Most zones in one request.
+    #[arg(long, env = "ZONETALLY_MAX_ZONES", default_value_t = 200_000)]
+    pub max_zones: usize,
+    /// Most cells over all zones of one request (counted with multiplicity).
+    #[arg(long, env = "ZONETALLY_MAX_ZONE_CELLS", default_value_t = 100_000_000)]
+    pub max_zone_cells: u64,
+    /// Largest planned cost (the planner's multiply-adds) of any request.
+    #[arg(long, env = "ZONETALLY_MAX_COST", default_value_t = 1e13)]
+    pub max_cost: f64,
+    /// Largest planned cost of a synchronous request; costlier ones must be sent async.
+    #[arg(long, env = "ZONETALLY_SYNC_BUDGET", default_value_t = 2e10)]
+    pub sync_budget: f64,
+    /// Seconds a request may take before it is answered 504 (its computation is cancelled).
+    #[arg(long, env = "ZONETALLY_REQUEST_TIMEOUT", default_value_t = 120.0)]
+    pub request_timeout: f64,
+    /// Deepest nesting of arrays and objects accepted in a JSON body.
+    #[arg(long, env = "ZONETALLY_MAX_JSON_DEPTH", default_value_t = 16)]
+    pub max_json_depth: usize,
+    /// Origins allowed to call from a browser (comma-separated); none by default.
+    #[arg(long, env = "ZONETALLY_CORS_ORIGINS", value_delimiter = ',')]
+    pub cors_origins: Vec<String>,
+    /// Log one JSON object per line instead of text.
+    #[arg(long, env = "ZONETALLY_LOG_JSON", default_value_t = false)]
+    pub log_json: bool,
+    /// Seconds to let running requests finish after SIGTERM or Ctrl-C.
+    #[arg(long, env = "ZONETALLY_SHUTDOWN_GRACE", default_value_t = 10.0)]
+    pub shutdown_grace: f64,
+    /// Seconds suggested in `Retry-After` to pollers and to clients refused by a full queue.
+    #[arg(long, env = "ZONETALLY_RETRY_AFTER", default_value_t = 1)]
+    pub retry_after: u64,
+}
+
+impl Default for Config {
+    /// The defaults above, with no environment read.
+    fn default() -> Self {
+        Config {
+            bind: SocketAddr::from(([127, 0, 0, 1], 8080)),
+            threads: 0,
+            queue: 64,
+            job_ttl: 3600.0,
+            raster_cache_bytes: 1 << 30,
+            normaliser_cache_bytes: 256 << 20,
+            max_body_bytes: 64 << 20,
+            max_cells: 25_000_000,
+            max_zones: 200_000,
+            max_zone_cells: 100_000_000,
+            max_cost: 1e13,
+            sync_budget: 2e10,
+            request_timeout: 120.0,
+            max_json_depth: 16,
+            cors_origins: Vec::new(),
+            log_json: false,
+            shutdown_grace: 10.0,
+            retry_after: 1,
+        }
+    }
+}
+
+impl Config {
+    pub fn limits(&self) -> Limits {
+        Limits {
+            max_cells: self.max_cells,
+            max_zones: self.max_zones,
+            max_zone_cells: self.max_zone_cells,
+        }
+    }
+    pub fn job_ttl(&self) -> Duration {
+        secs(self.job_ttl)
+    }
+    pub fn request_timeout(&self) -> Duration {
+        secs(self.request_timeout)
+    }
+    pub fn shutdown_grace(&self) -> Duration {
+        secs(self.shutdown_grace)
+    }
+}
+
+fn secs(s: f64) -> Duration {
+    Duration::try_from_secs_f64(s.max(0.0)).unwrap_or(Duration::MAX)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn default_matches_the_flags() {
+        let parsed = Config::parse_from(["serve"]);
+        let d = Config::default();
+        assert_eq!(
+            format!("{parsed:?}"),
+            format!("{d:?}"),
+            "Config::default and the clap defaults diverged"
+        );
+    }
+}
