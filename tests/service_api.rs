@@ -285,13 +285,7 @@ async fn get_requests_ignore_prefer() {
 async fn polling_gets_etags_304s_and_retry_after_while_queued() {
     let (state, app) = state_with(config());
     let block = block_pool(&state);
-    let created = post_json(
-        &app,
-        "/processes/zone-counts/execution",
-        &json!({"inputs": tea_inputs()}),
-        Some("respond-async"),
-    )
-    .await;
+    let created = submit_tea_job(&app).await;
     let location = created.header("location").unwrap();
     let first = get(&app, &location).await;
     assert_eq!(first.status, StatusCode::OK);
@@ -344,13 +338,7 @@ async fn finished_jobs_expire_after_their_ttl() {
         job_ttl: 0.2,
         ..config()
     });
-    let created = post_json(
-        &app,
-        "/processes/zone-counts/execution",
-        &json!({"inputs": tea_inputs()}),
-        Some("respond-async"),
-    )
-    .await;
+    let created = submit_tea_job(&app).await;
     let location = created.header("location").unwrap();
     assert_eq!(wait_job(&app, &location).await["status"], "successful");
     tokio::time::sleep(Duration::from_millis(400)).await;
@@ -367,13 +355,7 @@ async fn finished_jobs_expire_after_their_ttl() {
 async fn dismissing_a_queued_job_cancels_it_before_it_runs() {
     let (state, app) = state_with(config());
     let block = block_pool(&state);
-    let created = post_json(
-        &app,
-        "/processes/zone-counts/execution",
-        &json!({"inputs": tea_inputs()}),
-        Some("respond-async"),
-    )
-    .await;
+    let created = submit_tea_job(&app).await;
     let location = created.header("location").unwrap();
     let job_id = created.json()["jobID"].as_str().unwrap().to_string();
     let control = state.store().get(&job_id).unwrap().control.clone();
@@ -502,13 +484,7 @@ async fn job_list_pages_and_filters() {
     let (_, app) = state_with(config());
     let mut ids = Vec::new();
     for _ in 0..3 {
-        let r = post_json(
-            &app,
-            "/processes/zone-counts/execution",
-            &json!({"inputs": tea_inputs()}),
-            Some("respond-async"),
-        )
-        .await;
+        let r = submit_tea_job(&app).await;
         ids.push(r.header("location").unwrap());
     }
     let post = json!({"inputs": {"raster": {"width": 2, "height": 1, "values": [0.5, 0.5]}, "evidence": {"total": 1}}});
@@ -810,13 +786,7 @@ async fn cors_allows_listed_origins_only() {
 async fn shutdown_fails_unfinished_jobs_and_refuses_new_work() {
     let (state, app) = state_with(config());
     let block = block_pool(&state);
-    let created = post_json(
-        &app,
-        "/processes/zone-counts/execution",
-        &json!({"inputs": tea_inputs()}),
-        Some("respond-async"),
-    )
-    .await;
+    let created = submit_tea_job(&app).await;
     let location = created.header("location").unwrap();
     assert_eq!(state.begin_shutdown(), 1);
     let st = get(&app, &location).await.json();

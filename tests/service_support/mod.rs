@@ -78,6 +78,17 @@ pub async fn post_json(router: &Router, path: &str, body: &Value, prefer: Option
 }
 
 /// The demo's tea example: 8 cells at p = 1/2, 4 events observed, one zone of 4 cells.
+/// Submits the tea example as an asynchronous `zone-counts` job.
+pub async fn submit_tea_job(router: &Router) -> Reply {
+    post_json(
+        router,
+        "/processes/zone-counts/execution",
+        &serde_json::json!({"inputs": tea_inputs()}),
+        Some("respond-async"),
+    )
+    .await
+}
+
 pub fn tea_inputs() -> Value {
     json!({
         "raster": {"width": 4, "height": 2, "values": [0.5, 0.5, 0.5, 0.5, 0.5, 0.5, 0.5, 0.5]},
