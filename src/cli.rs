@@ -1,10 +1,13 @@
 //! Command-line entry points other than the service: `eval` reads a request document and prints
-//! the results document.
+//! the results document. It decodes and computes through the same code as the `zone-counts`
+//! process, with a context of its own: rasters inline only, normalisers computed afresh.
 
 use std::io::Read;
 
-use crate::api::wire::{self, EvalRequest, Limits, ResultsDocument};
-use crate::engine::{self, Control};
+use crate::api::decode::{InlineOnly, Limits};
+use crate::api::processes::{zone_counts, Context, Uncached};
+use crate::api::wire::EvalRequest;
+use crate::engine::Control;
 
 /// A command-line failure: the message to print and the exit code (2 for bad input).
 #[derive(Debug)]
@@ -37,26 +40,23 @@ pub fn eval(path: &str) -> Result<String, CliError> {
             "`{path}` is not a valid request document: {e} (see README.md for the fields)"
         ))
     })?;
-    let decoded = wire::decode(request, &Limits::default()).map_err(|e| {
-        CliError::input(format!(
-            "{}: {}",
-            if e.pointer.is_empty() {
-                "/"
-            } else {
-                &e.pointer
-            },
-            e.detail
-        ))
+    let ctx = Context {
+        limits: Limits::default(),
+        rasters: &InlineOnly,
+        normalisers: &Uncached,
+    };
+    let counts = zone_counts::prepare(request, &ctx).map_err(|e| {
+        let pointer = if e.pointer.is_empty() {
+            "/"
+        } else {
+            &e.pointer
+        };
+        CliError::input(format!("{pointer}: {}", e.detail))
     })?;
-    let evaluation = engine::evaluate(
-        &decoded.raster,
-        &decoded.zones,
-        decoded.total,
-        &decoded.settings,
-        &Control::new(),
-    )
-    .map_err(|e| CliError::input(format!("{}: {e}", wire::engine_pointer(&e))))?;
-    let doc = ResultsDocument::from(evaluation);
+    let doc = zone_counts::compute(&counts, &ctx, &Control::new()).map_err(|e| CliError {
+        message: format!("the computation failed: {e}"),
+        code: 1,
+    })?;
     serde_json::to_string_pretty(&doc).map_err(|e| CliError {
         message: format!("cannot encode results: {e}"),
         code: 1,

@@ -1,13 +1,15 @@
 //! zonetally: conditional zone-count distributions from a calibrated probability raster and an
 //! observed total.
 //!
-//! `engine` is the numerical core (pure, synchronous); `api` owns the wire format and HTTP;
-//! `jobs` owns where jobs live and the compute pool they run on.
+//! `engine` is the numerical core (pure, synchronous); `geo` turns shapes on the grid into cell
+//! sets; `api` owns the wire format and HTTP; `jobs` owns where jobs live, how they change and
+//! the compute pool they run on.
 
 pub mod api;
 pub mod bench;
 pub mod cli;
 pub mod engine;
+pub mod geo;
 pub mod jobs;
 
 pub use api::config::Config;

@@ -281,12 +281,10 @@ fn log_odds_shift_leaves_conditional_results_unchanged() {
             let shifted = Raster::from_probabilities(w, h, shifted_values).unwrap();
             let zones2: Vec<Zone> = zones
                 .iter()
-                .map(|z| Zone::new(z.id(), z.cells().to_vec(), &shifted).unwrap())
+                .map(|z| Zone::new(z.id(), z.indices().collect(), &shifted).unwrap())
                 .collect();
-            let settings = Settings {
-                thresholds: vec![1, 3, 10],
-                ..Settings::default()
-            };
+            let settings =
+                Settings::new(0.9, vec![1, 3, 10], engine::DEFAULT_TOLERANCE, true).unwrap();
             let a =
                 on_pool(|| engine::evaluate(&raster, &zones, total, &settings, &Control::new()))
                     .unwrap();

@@ -281,10 +281,10 @@ async fn shutdown_fails_unfinished_jobs_and_lets_the_server_stop() {
         matches!(stopped, Ok(Ok(Ok(())))),
         "the server did not stop cleanly: {stopped:?}"
     );
-    let job = server.state.store().get(&id).unwrap();
-    assert_eq!(job.state.as_str(), "failed");
-    assert!(job.message.contains("shut down"));
-    assert!(job.control.is_cancelled());
+    let job = server.state.jobs().record(&id).unwrap();
+    assert_eq!(job.state().as_str(), "failed");
+    assert!(job.message().contains("shut down"));
+    assert!(job.cancel_requested());
     assert!(
         c.get(server.url("/healthz")).send().await.is_err(),
         "the listener must be closed"

@@ -12,7 +12,9 @@ use std::sync::Arc;
 use moka::sync::Cache;
 use sha2::{Digest, Sha256};
 
-use crate::engine::{Control, EngineError, Normaliser, Raster};
+use super::decode::{DecodeError, DecodeKind, RasterSource};
+use super::processes::{NormaliserSource, Uncached};
+use crate::engine::{Control, EngineError, Evidence, Normaliser, Raster};
 
 const HASH_TAG: &[u8] = b"zonetally raster v1\0";
 /// Stands for a nodata cell in the hash (not a probability's bit pattern).
@@ -118,21 +120,21 @@ impl Caches {
         (hash, held)
     }
 
-    /// The normaliser of (raster, total), computed on a miss. Runs on the compute pool.
-    pub fn normaliser(
+    /// The normaliser of (raster, evidence), computed on a miss. Runs on the compute pool.
+    pub fn normaliser_of(
         &self,
         hash: &str,
         raster: &Raster,
-        total: u64,
+        evidence: &Evidence,
         control: &Control,
     ) -> Result<Arc<Normaliser>, EngineError> {
-        let key = (hash.to_string(), total);
+        let key = (hash.to_string(), evidence.total());
         if let Some(n) = self.normalisers.get(&key) {
             self.normaliser_hits.fetch_add(1, Ordering::Relaxed);
             return Ok(n);
         }
         self.normaliser_misses.fetch_add(1, Ordering::Relaxed);
-        let n = Arc::new(Normaliser::new(raster, total, control)?);
+        let n = Arc::new(Normaliser::of(raster, evidence, control)?);
         self.normalisers.insert(key, n.clone());
         Ok(n)
     }
@@ -154,6 +156,45 @@ impl Caches {
             misses: self.normaliser_misses.load(Ordering::Relaxed),
             bytes: self.normalisers.weighted_size(),
             entries: self.normalisers.entry_count(),
+        }
+    }
+}
+
+impl RasterSource for Caches {
+    fn resolve(&self, reference: &str) -> Result<(String, Arc<Raster>), DecodeError> {
+        if !is_hash(reference) {
+            return Err(DecodeError::at(
+                "/raster/ref",
+                format!("`{reference}` is not a raster reference: it must be `sha256:` and 64 lowercase hex digits, as returned by POST /rasters"),
+            ));
+        }
+        let held = self.raster(reference).ok_or_else(|| DecodeError {
+            pointer: "/raster/ref".into(),
+            detail: format!("raster `{reference}` is not held by this service"),
+            kind: DecodeKind::UnknownRaster {
+                reference: reference.to_string(),
+            },
+        })?;
+        Ok((reference.to_string(), held))
+    }
+
+    fn keep(&self, raster: Raster) -> (Option<String>, Arc<Raster>) {
+        let (hash, held) = self.keep_raster(raster);
+        (Some(hash), held)
+    }
+}
+
+impl NormaliserSource for Caches {
+    fn normaliser(
+        &self,
+        raster_key: Option<&str>,
+        raster: &Raster,
+        evidence: &Evidence,
+        control: &Control,
+    ) -> Result<Arc<Normaliser>, EngineError> {
+        match raster_key {
+            Some(hash) => self.normaliser_of(hash, raster, evidence, control),
+            None => Uncached.normaliser(None, raster, evidence, control),
         }
     }
 }

@@ -6,7 +6,7 @@ use std::time::Duration;
 
 use clap::Parser;
 
-use super::wire::Limits;
+use super::decode::Limits;
 
 #[derive(Clone, Debug, Parser)]
 #[command(name = "zonetally serve")]
@@ -99,6 +99,7 @@ impl Config {
             max_cells: self.max_cells,
             max_zones: self.max_zones,
             max_zone_cells: self.max_zone_cells,
+            max_cost: self.max_cost,
         }
     }
     pub fn job_ttl(&self) -> Duration {

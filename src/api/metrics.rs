@@ -1,17 +1,20 @@
 //! Prometheus text exposition: request counts and latency histograms by route and status,
-//! plus gauges and counters read off the pool, the caches and the job store at scrape time.
+//! plus gauges and counters from a `Snapshot` of the pool, the caches and the job counts taken
+//! at scrape time (the job store keeps its counts as it changes; nothing walks the jobs).
 
 use std::collections::BTreeMap;
 use std::fmt::Write;
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::Mutex;
 
+use std::sync::Arc;
+
 use axum::extract::{MatchedPath, Request, State};
 use axum::middleware::Next;
 use axum::response::Response;
 
-use super::state::AppState;
-use crate::jobs::JobState;
+use super::cache::CacheStats;
+use crate::jobs::{JobCounts, JobState, PoolStats};
 
 /// Upper bounds of the latency buckets, in seconds: 1 ms to 1 min, about x2.5 apart.
 const BUCKETS: [f64; 13] = [
@@ -23,6 +26,15 @@ struct Series {
     count: u64,
     sum: f64,
     buckets: [u64; BUCKETS.len()],
+}
+
+/// The figures read off the rest of the service for one scrape.
+#[derive(Clone, Copy, Debug, Default, PartialEq)]
+pub struct Snapshot {
+    pub pool: PoolStats,
+    pub rasters: CacheStats,
+    pub normalisers: CacheStats,
+    pub jobs: JobCounts,
 }
 
 #[derive(Default)]
@@ -57,7 +69,7 @@ impl Metrics {
         self.cancelled.fetch_add(1, Ordering::Relaxed);
     }
 
-    pub fn render(&self, state: &AppState) -> String {
+    pub fn render(&self, snapshot: &Snapshot) -> String {
         let mut out = String::new();
         {
             let map = self.requests.lock().unwrap_or_else(|p| p.into_inner());
@@ -92,7 +104,7 @@ impl Metrics {
                 );
             }
         }
-        let pool = state.pool().stats();
+        let pool = snapshot.pool;
         let mut metric = |name: &str, kind: &str, help: &str, value: String| {
             let _ = writeln!(
                 out,
@@ -153,15 +165,13 @@ impl Metrics {
             "Zone cells (or posterior cells) of finished computations.",
             self.cells.load(Ordering::Relaxed).to_string(),
         );
-        let caches = state.caches();
         out.push_str("# HELP zonetally_cache_hits_total Cache lookups that found the entry.\n# TYPE zonetally_cache_hits_total counter\n");
-        let (r, n) = (caches.raster_stats(), caches.normaliser_stats());
+        let (r, n) = (snapshot.rasters, snapshot.normalisers);
         let _ = writeln!(out, "zonetally_cache_hits_total{{cache=\"raster\"}} {}\nzonetally_cache_hits_total{{cache=\"normaliser\"}} {}", r.hits, n.hits);
         out.push_str("# HELP zonetally_cache_misses_total Cache lookups that did not.\n# TYPE zonetally_cache_misses_total counter\n");
         let _ = writeln!(out, "zonetally_cache_misses_total{{cache=\"raster\"}} {}\nzonetally_cache_misses_total{{cache=\"normaliser\"}} {}", r.misses, n.misses);
         out.push_str("# HELP zonetally_cache_bytes Bytes held by a cache.\n# TYPE zonetally_cache_bytes gauge\n");
         let _ = writeln!(out, "zonetally_cache_bytes{{cache=\"raster\"}} {}\nzonetally_cache_bytes{{cache=\"normaliser\"}} {}", r.bytes, n.bytes);
-        let (jobs, _) = state.store().list(&Default::default(), 0, usize::MAX);
         out.push_str("# HELP zonetally_jobs Jobs held, by status.\n# TYPE zonetally_jobs gauge\n");
         for st in [
             JobState::Accepted,
@@ -169,7 +179,7 @@ impl Metrics {
             JobState::Successful,
             JobState::Failed,
         ] {
-            let n = jobs.iter().filter(|j| j.state == st).count();
+            let n = snapshot.jobs.of(st);
             let _ = writeln!(out, "zonetally_jobs{{status=\"{}\"}} {n}", st.as_str());
         }
         out
@@ -178,7 +188,7 @@ impl Metrics {
 
 /// Middleware recording every response under its route template (never the raw path, so ids
 /// do not explode the label set).
-pub async fn record(State(state): State<AppState>, req: Request, next: Next) -> Response {
+pub async fn record(State(metrics): State<Arc<Metrics>>, req: Request, next: Next) -> Response {
     let route = req
         .extensions()
         .get::<MatchedPath>()
@@ -187,7 +197,7 @@ pub async fn record(State(state): State<AppState>, req: Request, next: Next) -> 
     let method = req.method().as_str().to_string();
     let start = std::time::Instant::now();
     let resp = next.run(req).await;
-    state.metrics().observe(
+    metrics.observe(
         &route,
         &method,
         resp.status().as_u16(),

@@ -9,6 +9,8 @@
 pub mod body;
 pub mod cache;
 pub mod config;
+pub mod decode;
+pub mod jobs;
 pub mod metrics;
 pub mod ogc;
 pub mod ops;
@@ -64,9 +66,9 @@ fn routes() -> OpenApiRouter<AppState> {
         .routes(routes!(ogc::processes))
         .routes(routes!(ogc::process))
         .routes(routes!(ogc::execute))
-        .routes(routes!(ogc::jobs))
-        .routes(routes!(ogc::job, ogc::dismiss))
-        .routes(routes!(ogc::results))
+        .routes(routes!(jobs::jobs))
+        .routes(routes!(jobs::job, jobs::dismiss))
+        .routes(routes!(jobs::results))
         .routes(routes!(rasters::post_raster))
         .routes(routes!(rasters::get_raster))
         .routes(routes!(ops::healthz))
@@ -124,7 +126,7 @@ pub fn router(state: AppState) -> Router {
         .method_not_allowed_fallback(method_not_allowed)
         .route_layer(middleware::from_fn_with_state(state.clone(), time_limit))
         .route_layer(middleware::from_fn_with_state(
-            state.clone(),
+            state.metrics().clone(),
             metrics::record,
         ))
         .layer(DefaultBodyLimit::max(config.max_body_bytes))

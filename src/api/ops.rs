@@ -39,20 +39,20 @@ pub struct Readiness {
               (status = 503, description = "not ready (shutting down, store unavailable)", body = Problem, content_type = "application/problem+json")))]
 pub async fn readyz(State(state): State<AppState>) -> Result<Json<Readiness>, ApiError> {
     let pool = state.pool().stats();
-    if state.is_shutting_down() || !state.store().ready() || pool.threads == 0 {
+    if state.is_shutting_down() || !state.jobs().store_ready() || pool.threads == 0 {
         return Err(ApiError::ShuttingDown);
     }
     Ok(Json(Readiness {
         status: "ready".into(),
         compute_threads: pool.threads,
         queue_free: pool.capacity.saturating_sub(pool.queued + pool.running),
-        jobs: state.store().len(),
+        jobs: state.jobs().counts().total(),
     }))
 }
 
 #[utoipa::path(get, path = "/metrics", tag = "operations", responses((status = 200, description = "Prometheus text exposition", body = String, content_type = "text/plain")))]
 pub async fn metrics(State(state): State<AppState>) -> Response {
-    let text = state.metrics().render(&state);
+    let text = state.metrics().render(&state.snapshot());
     (
         [(
             header::CONTENT_TYPE,

@@ -11,7 +11,8 @@ use axum::response::{IntoResponse, Response};
 use serde::{Deserialize, Serialize};
 use utoipa::ToSchema;
 
-use super::wire::DecodeError;
+use super::decode::{DecodeError, DecodeKind};
+use crate::jobs::{Ending, Failure, Failures};
 
 const OGC_EXCEPTIONS: &str = "http://www.opengis.net/def/exceptions/ogcapi-processes-1/1.0";
 
@@ -220,17 +221,55 @@ impl ApiError {
     /// A decoding error of the request document, whose pointers are relative to `base`.
     pub fn from_decode(err: DecodeError, base: &str) -> ApiError {
         let pointer = format!("{base}{}", err.pointer);
-        if err.too_large {
-            ApiError::TooLarge {
+        match err.kind {
+            DecodeKind::Invalid => ApiError::InvalidInput {
                 pointer,
                 detail: err.detail,
-            }
-        } else {
-            ApiError::InvalidInput {
+            },
+            DecodeKind::TooLarge => ApiError::TooLarge {
                 pointer,
                 detail: err.detail,
+            },
+            DecodeKind::UnknownRaster { reference } => {
+                ApiError::UnknownRaster { pointer, reference }
             }
         }
+    }
+
+    /// The failure a job keeps for this error: its message, status and problem document. The one
+    /// place a failure is encoded for the job store.
+    pub fn to_failure(&self) -> Failure {
+        if let ApiError::Internal { cause } = self {
+            tracing::error!(%cause, "job failed");
+        }
+        let message = match self {
+            ApiError::ShuttingDown => {
+                "the service shut down before this job finished: submit it again".to_string()
+            }
+            ApiError::Cancelled => "cancelled".to_string(),
+            other => other.problem().detail,
+        };
+        Failure {
+            message,
+            status: self.status().as_u16(),
+            body: self.to_body(),
+        }
+    }
+}
+
+/// The problem documents of the endings the job manager decides itself.
+pub struct JobFailures;
+
+impl Failures for JobFailures {
+    fn failure(&self, ending: Ending) -> Failure {
+        match ending {
+            Ending::Cancelled => ApiError::Cancelled,
+            Ending::Panicked => ApiError::Internal {
+                cause: "the computation panicked".into(),
+            },
+            Ending::ShutDown => ApiError::ShuttingDown,
+        }
+        .to_failure()
     }
 }
 

@@ -12,9 +12,10 @@ use utoipa::ToSchema;
 
 use super::body;
 use super::cache::is_hash;
+use super::decode;
 use super::problem::{ApiError, Problem};
 use super::state::AppState;
-use super::wire::{self, RasterSpec};
+use super::wire::RasterSpec;
 use crate::engine::Raster;
 
 /// What the service holds for a raster.
@@ -59,7 +60,7 @@ pub async fn post_raster(
         .decode(move || {
             body::check_depth(&body, st.config().max_json_depth)?;
             let spec: RasterSpec = body::parse(&body)?;
-            let raster = wire::decode_raster(spec, &st.config().limits()).map_err(|mut e| {
+            let raster = decode::raster(spec, &st.config().limits()).map_err(|mut e| {
                 // The body is the raster itself: drop the request document's `/raster`.
                 e.pointer = e
                     .pointer

@@ -5,7 +5,7 @@
 //! the grace period to finish.
 
 use std::future::Future;
-use std::time::{Duration, Instant};
+use std::time::Duration;
 
 use tokio::net::TcpListener;
 
@@ -39,7 +39,7 @@ pub async fn serve_on(
             let mut tick = tokio::time::interval(SWEEP_EVERY);
             loop {
                 tick.tick().await;
-                state.store().purge_expired(Instant::now());
+                state.jobs().purge_expired();
             }
         })
     };

@@ -1,16 +1,18 @@
-//! The state every handler shares: settings, the compute pool, the job store, the caches, the
-//! process registry and the metrics. Cheap to clone (one `Arc`).
+//! The state every handler shares: settings, the job manager (with the compute pool), the
+//! caches, the process registry and the metrics. Cheap to clone (one `Arc`).
+//!
+//! Processes never see this: `context()` hands them the narrow `processes::Context`.
 
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 
 use super::cache::Caches;
 use super::config::Config;
-use super::metrics::Metrics;
-use super::problem::ApiError;
-use super::processes::{self, Process};
+use super::metrics::{Metrics, Snapshot};
+use super::problem::{ApiError, JobFailures};
+use super::processes::{self, Context, Process};
 use crate::engine::Control;
-use crate::jobs::{Finished, JobStore, MemoryStore, Pool};
+use crate::jobs::{Finished, Jobs, Pool};
 
 #[derive(Clone)]
 pub struct AppState {
@@ -19,10 +21,9 @@ pub struct AppState {
 
 struct Inner {
     config: Config,
-    pool: Pool,
-    store: Arc<dyn JobStore>,
+    jobs: Jobs,
     caches: Caches,
-    metrics: Metrics,
+    metrics: Arc<Metrics>,
     processes: Vec<Arc<dyn Process>>,
     shutting_down: AtomicBool,
 }
@@ -30,19 +31,15 @@ struct Inner {
 impl AppState {
     /// The embedded set-up: an in-memory job store.
     pub fn new(config: Config) -> Result<AppState, String> {
-        AppState::with_store(config, Arc::new(MemoryStore::new()))
-    }
-
-    pub fn with_store(config: Config, store: Arc<dyn JobStore>) -> Result<AppState, String> {
         let pool = Pool::new(config.threads, config.queue)?;
+        let jobs = Jobs::in_memory(pool, Arc::new(JobFailures), config.job_ttl());
         let caches = Caches::new(config.raster_cache_bytes, config.normaliser_cache_bytes);
         Ok(AppState {
             inner: Arc::new(Inner {
                 config,
-                pool,
-                store,
+                jobs,
                 caches,
-                metrics: Metrics::default(),
+                metrics: Arc::default(),
                 processes: processes::registry(),
                 shutting_down: AtomicBool::new(false),
             }),
@@ -52,16 +49,16 @@ impl AppState {
     pub fn config(&self) -> &Config {
         &self.inner.config
     }
-    pub fn pool(&self) -> &Pool {
-        &self.inner.pool
+    pub fn jobs(&self) -> &Jobs {
+        &self.inner.jobs
     }
-    pub fn store(&self) -> &Arc<dyn JobStore> {
-        &self.inner.store
+    pub fn pool(&self) -> &Pool {
+        self.inner.jobs.pool()
     }
     pub fn caches(&self) -> &Caches {
         &self.inner.caches
     }
-    pub fn metrics(&self) -> &Metrics {
+    pub fn metrics(&self) -> &Arc<Metrics> {
         &self.inner.metrics
     }
     pub fn processes(&self) -> &[Arc<dyn Process>] {
@@ -69,6 +66,26 @@ impl AppState {
     }
     pub fn process(&self, id: &str) -> Option<Arc<dyn Process>> {
         self.inner.processes.iter().find(|p| p.id() == id).cloned()
+    }
+
+    /// What processes see: the limits and the caches as their raster and normaliser sources.
+    pub fn context(&self) -> Context<'_> {
+        Context {
+            limits: self.inner.config.limits(),
+            rasters: &self.inner.caches,
+            normalisers: &self.inner.caches,
+        }
+    }
+
+    /// The figures `/metrics` renders, read now.
+    pub fn snapshot(&self) -> Snapshot {
+        let caches = &self.inner.caches;
+        Snapshot {
+            pool: self.pool().stats(),
+            rasters: caches.raster_stats(),
+            normalisers: caches.normaliser_stats(),
+            jobs: self.inner.jobs.counts(),
+        }
     }
 
     pub fn is_shutting_down(&self) -> bool {
@@ -79,14 +96,7 @@ impl AppState {
     /// are cancelled). Returns how many jobs were failed.
     pub fn begin_shutdown(&self) -> usize {
         self.inner.shutting_down.store(true, Ordering::Relaxed);
-        let message = "the service shut down before this job finished: submit it again";
-        let failure = ApiError::ShuttingDown;
-        self.inner
-            .store
-            .fail_unfinished(message, &|_| crate::jobs::Outcome::Failure {
-                status: failure.status().as_u16(),
-                body: failure.to_body(),
-            })
+        self.inner.jobs.shut_down()
     }
 
     /// Parses and validates a body on the runtime's blocking threads (not the compute pool, whose
@@ -111,8 +121,7 @@ impl AppState {
         F: FnOnce(&Control) -> Result<T, ApiError> + Send + 'static,
     {
         let rx = self
-            .inner
-            .pool
+            .pool()
             .submit(control, work)
             .map_err(|_| ApiError::Busy {
                 retry_after: self.inner.config.retry_after,

@@ -238,7 +238,7 @@ pub fn one_cell_tree(
         let node = &plan.nodes[i];
         unions[i] = match (node.children, node.zone) {
             (Some((l, r)), _) => union(&unions[l], &unions[r]),
-            (None, Some(z)) => zones[z].cells().to_vec(),
+            (None, Some(z)) => zones[z].indices().collect(),
             (None, None) => Vec::new(),
         };
     }
@@ -285,7 +285,7 @@ impl Walk<'_> {
             }
         } else if let Some(z) = n.zone {
             let mut law = WindowLaw::unit(self.half);
-            law.add_cells(self.values, self.zones[z].cells().iter().copied());
+            law.add_cells(self.values, self.zones[z].indices());
             out[z] = Some(posterior(&law, outside, self.total));
         }
     }
@@ -293,21 +293,26 @@ impl Walk<'_> {
 
 /// Baseline (b): one zone's conditional pmf by direct convolution over the cells outside it,
 /// one cell at a time, windows of 2 `half` + 1 values, no tilting.
-pub fn per_zone_direct(raster: &Raster, zone: &[u32], total: u64, half: usize) -> Pmf {
+pub fn per_zone_direct<C: Copy + Into<u32>>(
+    raster: &Raster,
+    zone: &[C],
+    total: u64,
+    half: usize,
+) -> Pmf {
     let values = raster.values();
     let mut outside = WindowLaw::unit(half);
     let mut j = 0;
     for (c, &p) in values.iter().enumerate() {
-        while j < zone.len() && (zone[j] as usize) < c {
+        while j < zone.len() && (zone[j].into() as usize) < c {
             j += 1;
         }
-        if (j < zone.len() && zone[j] as usize == c) || p.is_nan() {
+        if (j < zone.len() && zone[j].into() as usize == c) || p.is_nan() {
             continue;
         }
         outside.add(p);
     }
     let mut law = WindowLaw::unit(half);
-    law.add_cells(values, zone.iter().copied());
+    law.add_cells(values, zone.iter().map(|&c| c.into()));
     posterior(&law, &outside, total)
 }
 
@@ -343,9 +348,9 @@ impl FftDeconvolution {
     }
 
     /// The zone's conditional pmf with P_{T\S} = IFFT(FFT(P_T) / FFT(P_S)).
-    pub fn zone(&self, raster: &Raster, zone: &[u32], total: u64) -> Pmf {
+    pub fn zone<C: Copy + Into<u32>>(&self, raster: &Raster, zone: &[C], total: u64) -> Pmf {
         let mut law = WindowLaw::unit(self.half);
-        law.add_cells(raster.values(), zone.iter().copied());
+        law.add_cells(raster.values(), zone.iter().map(|&c| c.into()));
         let mut buf = placed(&law, self.len);
         self.forward.process(&mut buf);
         for (b, t) in buf.iter_mut().zip(&self.total_law) {

@@ -360,7 +360,7 @@ mod tests {
         let p = partition(&r, 10);
         assert_eq!(p.len(), 100);
         assert!(p.iter().all(|z| z.len() == 100));
-        let mut all: Vec<u32> = p.iter().flat_map(|z| z.cells().to_vec()).collect();
+        let mut all: Vec<u32> = p.iter().flat_map(|z| z.indices()).collect();
         all.sort_unstable();
         assert_eq!(all, (0..10_000).collect::<Vec<_>>(), "a partition");
         // reference: closed form, lattice points with i^2 + j^2 <= 15^2 number 709 (Gauss circle

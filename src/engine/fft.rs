@@ -16,7 +16,7 @@ use std::cell::RefCell;
 use rustfft::num_complex::Complex;
 use rustfft::FftPlanner;
 
-use super::law::{gamma, UNIT_ROUNDOFF};
+use super::rounding::{gamma, UNIT_ROUNDOFF};
 
 thread_local! {
     static PLANNER: RefCell<FftPlanner<f64>> = RefCell::new(FftPlanner::new());

@@ -10,19 +10,7 @@
 //! Worst cases: `add_cells` is O(cells x width), `convolve` O(len_a x len_b), `convolve_range`
 //! O(range x len_b); memory is the output only.
 
-/// Unit roundoff of f64 (round to nearest).
-pub(crate) const UNIT_ROUNDOFF: f64 = f64::EPSILON / 2.0;
-
-/// Higham's gamma_k = k u / (1 - k u), the relative error bound after k roundings.
-/// Saturates at 1 when k u reaches 1/2 (the bound is then meaningless anyway).
-pub(crate) fn gamma(k: u64) -> f64 {
-    let ku = k as f64 * UNIT_ROUNDOFF;
-    if ku >= 0.5 {
-        1.0
-    } else {
-        ku / (1.0 - ku)
-    }
-}
+use super::rounding::{ROUNDINGS_PER_CELL, UNIT_ROUNDOFF};
 
 /// out[i] += s * x[i]: the inner loop of every convolution. Uses fused multiply-add on x86-64
 /// processors that have it (detected at run time; one rounding instead of two, so the rounding
@@ -75,10 +63,6 @@ unsafe fn fold_step_fma(out: &mut [f64], a: &[f64], b: &[f64], r: f64, q: f64) {
         *o = x.mul_add(r, y * q);
     }
 }
-
-/// Roundings charged for one Bernoulli cell: three for computing the tilted q and 1 - q from p,
-/// two for the multiply-add that folds it in.
-pub(crate) const ROUNDINGS_PER_CELL: u64 = 5;
 
 #[derive(Clone, Debug, PartialEq)]
 pub(crate) struct Law {
@@ -344,12 +328,5 @@ mod tests {
         assert!(l.dropped >= 1e-20 + 1e-19 && l.dropped < 1.2e-19);
         l.trim(0.0);
         assert_eq!(l.len(), 4);
-    }
-
-    #[test]
-    fn gamma_is_monotone_and_saturates() {
-        assert_eq!(gamma(0), 0.0);
-        assert!(gamma(10) > 10.0 * UNIT_ROUNDOFF);
-        assert_eq!(gamma(u64::MAX / 2), 1.0);
     }
 }

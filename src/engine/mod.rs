@@ -4,29 +4,44 @@
 //! executor. Pure and synchronous: it knows nothing of HTTP, async runtimes, JSON or files, and
 //! never does IO. Parallelism is rayon's: callers choose the pool with `pool.install`.
 //! Cancellation and progress go through `Control`.
+//!
+//! Inputs are checked once, when their types are built (`Raster`, `Zone`, `ZoneSet`,
+//! `Evidence`, `Settings`, `CellSelection`); the planner and the kernels trust them.
 
+mod certify;
 mod control;
 mod error;
+mod evidence;
 mod execute;
 mod fft;
 pub(crate) mod law;
+mod membership;
 mod model;
 mod normaliser;
 mod plan;
+mod posterior;
 pub mod reference;
+mod rounding;
 mod sets;
 mod summary;
 mod tilt;
+mod tree;
 
 pub use control::Control;
-pub use error::EngineError;
-pub use execute::{cell_posterior, execute, CellPosterior};
+pub use error::{
+    CellProblem, EngineError, ImpossibleTotal, Missing, RasterProblem, SettingProblem, ZoneProblem,
+};
+pub use evidence::Evidence;
+pub use execute::execute;
 pub use model::{
-    check_unique_ids, CellIndex, Raster, RasterStats, Settings, Zone, DEFAULT_LEVEL,
+    check_zones, CellIndex, Raster, RasterStats, Settings, Zone, ZoneSet, DEFAULT_LEVEL,
     DEFAULT_TOLERANCE, MAX_TOLERANCE, MIN_TOLERANCE,
 };
 pub use normaliser::{Normaliser, TotalCheck, IMPLAUSIBLE_TAIL};
 pub use plan::{plan, Plan, PlanNode};
+pub use posterior::{
+    cell_posterior, plan_cells, posterior, CellPlan, CellPosterior, CellSelection,
+};
 pub use summary::{Interval, ZoneSummary};
 
 /// Everything `evaluate` reports: one summary per zone, in request order, and the total check.
@@ -36,7 +51,9 @@ pub struct Evaluation {
     pub total: TotalCheck,
 }
 
-/// Plans and executes in one call, computing the normaliser too.
+/// Checks the zones and the total, then plans and executes in one call, computing the
+/// normaliser too. For inputs already checked (a `ZoneSet` and an `Evidence`), call
+/// `Normaliser::of`, `plan` and `execute` directly.
 ///
 /// Occurs as an error for an empty zone list, repeated zone ids, an impossible total, or
 /// cancellation.
@@ -47,13 +64,9 @@ pub fn evaluate(
     settings: &Settings,
     control: &Control,
 ) -> Result<Evaluation, EngineError> {
-    if zones.is_empty() {
-        return Err(EngineError::NothingToDo(
-            "the zone list is empty: give at least one zone".into(),
-        ));
-    }
-    check_unique_ids(zones)?;
-    let normaliser = Normaliser::new(raster, total, control)?;
+    check_zones(zones)?;
+    let evidence = Evidence::exact_total(total, raster)?;
+    let normaliser = Normaliser::of(raster, &evidence, control)?;
     let plan = plan(raster, zones);
     let summaries = execute(&plan, raster, zones, &normaliser, settings, control)?;
     Ok(Evaluation {

@@ -4,14 +4,31 @@
 //! re-validate. Construction errors carry the offending value and a hint, in the words a
 //! caller can show to a person.
 
-use super::error::EngineError;
+use std::ops::Deref;
+
+use super::error::{CellProblem, EngineError, Missing, RasterProblem, SettingProblem, ZoneProblem};
 
 /// Marker stored in the raster for a nodata cell: outside the study area, holds no event.
 const NODATA: f64 = f64::NAN;
 
 /// Index of a cell in row-major order (row 0 at the top).
 #[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
+#[repr(transparent)]
 pub struct CellIndex(pub u32);
+
+impl From<CellIndex> for u32 {
+    fn from(c: CellIndex) -> u32 {
+        c.0
+    }
+}
+
+impl CellIndex {
+    /// The index as a position in the raster's values.
+    #[inline]
+    pub fn index(self) -> usize {
+        self.0 as usize
+    }
+}
 
 /// A width x height grid of per-cell event probabilities, row-major, row 0 at the top.
 #[derive(Clone, Debug)]
@@ -50,12 +67,10 @@ impl Raster {
             match v {
                 None => out.push(NODATA),
                 Some(p) if (0.0..=1.0).contains(&p) => out.push(p),
-                Some(p) => {
+                Some(value) => {
                     return Err(EngineError::InvalidValue {
                         cell: i as u32,
-                        detail: format!(
-                            "cell {i} has value {p}: a probability must lie in [0, 1] (use nodata for cells outside the study area)"
-                        ),
+                        value,
                     })
                 }
             }
@@ -77,12 +92,9 @@ impl Raster {
             .iter()
             .position(|p| !p.is_nan() && !(0.0..=1.0).contains(p))
         {
-            let p = values[i];
             return Err(EngineError::InvalidValue {
                 cell: i as u32,
-                detail: format!(
-                    "cell {i} has value {p}: a probability must lie in [0, 1] (use nodata for cells outside the study area)"
-                ),
+                value: values[i],
             });
         }
         Ok(Self::from_checked(width, height, values))
@@ -128,8 +140,20 @@ impl Raster {
     }
     /// The probability of a cell, or `None` for nodata.
     pub fn get(&self, cell: CellIndex) -> Option<f64> {
-        let p = self.values[cell.0 as usize];
+        let p = self.values[cell.index()];
         (!p.is_nan()).then_some(p)
+    }
+
+    /// Why `cell` cannot be used in a zone or a cell list, if it cannot.
+    pub fn cell_problem(&self, cell: u32) -> Option<CellProblem> {
+        match self.values.get(cell as usize) {
+            None => Some(CellProblem::Outside {
+                width: self.width,
+                height: self.height,
+            }),
+            Some(p) if p.is_nan() => Some(CellProblem::Nodata),
+            Some(_) => None,
+        }
     }
     /// Raw values: probabilities, NaN for nodata.
     pub fn values(&self) -> &[f64] {
@@ -149,30 +173,27 @@ impl Raster {
 /// indices allow.
 fn check_shape(width: u32, height: u32, len: usize) -> Result<(), EngineError> {
     let expected = (width as u64) * (height as u64);
-    if width == 0 || height == 0 {
-        return Err(EngineError::InvalidRaster(format!(
-            "raster is {width}x{height}: width and height must both be at least 1"
-        )));
-    }
-    if expected > u32::MAX as u64 {
-        return Err(EngineError::InvalidRaster(format!(
-            "raster is {width}x{height} = {expected} cells: at most {} cells are supported",
-            u32::MAX
-        )));
-    }
-    if len as u64 != expected {
-        return Err(EngineError::InvalidRaster(format!(
-            "raster is {width}x{height} = {expected} cells but {len} values were given"
-        )));
-    }
-    Ok(())
+    let problem = if width == 0 || height == 0 {
+        RasterProblem::Empty { width, height }
+    } else if expected > u32::MAX as u64 {
+        RasterProblem::TooManyCells { width, height }
+    } else if len as u64 != expected {
+        RasterProblem::ValueCount {
+            width,
+            height,
+            given: len,
+        }
+    } else {
+        return Ok(());
+    };
+    Err(EngineError::InvalidRaster(problem))
 }
 
 /// A named set of cells. Cells are distinct, valid (not nodata) and sorted.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Zone {
     id: String,
-    cells: Vec<u32>,
+    cells: Vec<CellIndex>,
 }
 
 impl Zone {
@@ -186,52 +207,37 @@ impl Zone {
         raster: &Raster,
     ) -> Result<Zone, EngineError> {
         let id = id.into();
-        let (w, h) = (raster.width(), raster.height());
-        let last = raster.len() as u64 - 1;
+        let invalid = |zone: String, problem| EngineError::InvalidZone { zone, problem };
         if cells.is_empty() {
-            return Err(EngineError::InvalidZone {
-                zone: id.clone(),
-                position: None,
-                detail: format!("zone `{id}` has no cells: give at least one cell"),
-            });
+            return Err(invalid(id, ZoneProblem::Empty));
         }
-        for (pos, &c) in cells.iter().enumerate() {
-            if c as u64 > last {
-                return Err(EngineError::InvalidZone {
-                    zone: id.clone(),
-                    position: Some(pos),
-                    detail: format!(
-                        "zone `{id}` has cell {c}, outside the {w}x{h} raster (last index {last})"
-                    ),
-                });
-            }
-            if raster.values[c as usize].is_nan() {
-                return Err(EngineError::InvalidZone {
-                    zone: id.clone(),
-                    position: Some(pos),
-                    detail: format!(
-                        "zone `{id}` has cell {c}, which is nodata (outside the study area): remove it from the zone"
-                    ),
-                });
-            }
+        if let Some((position, cell, problem)) = cells
+            .iter()
+            .enumerate()
+            .find_map(|(pos, &c)| raster.cell_problem(c).map(|p| (pos, c, p)))
+        {
+            return Err(invalid(
+                id,
+                ZoneProblem::Cell {
+                    position,
+                    cell,
+                    problem,
+                },
+            ));
         }
         let mut sorted = cells;
         sorted.sort_unstable();
         if let Some(w2) = sorted.windows(2).find(|w2| w2[0] == w2[1]) {
-            return Err(EngineError::InvalidZone {
-                zone: id.clone(),
-                position: None,
-                detail: format!(
-                    "zone `{id}` lists cell {} more than once: list each cell once",
-                    w2[0]
-                ),
-            });
+            return Err(invalid(id, ZoneProblem::Repeated { cell: w2[0] }));
         }
-        Ok(Zone { id, cells: sorted })
+        Ok(Zone {
+            id,
+            cells: sorted.into_iter().map(CellIndex).collect(),
+        })
     }
 
     /// An unnamed block of cells already known to be valid, distinct and sorted (internal use).
-    pub(crate) fn block(cells: Vec<u32>) -> Zone {
+    pub(crate) fn block(cells: Vec<CellIndex>) -> Zone {
         Zone {
             id: String::new(),
             cells,
@@ -242,8 +248,12 @@ impl Zone {
         &self.id
     }
     /// The zone's cells, sorted ascending.
-    pub fn cells(&self) -> &[u32] {
+    pub fn cells(&self) -> &[CellIndex] {
         &self.cells
+    }
+    /// The zone's cells as plain row-major indices, sorted ascending.
+    pub fn indices(&self) -> impl Iterator<Item = u32> + '_ {
+        self.cells.iter().map(|c| c.0)
     }
     pub fn len(&self) -> usize {
         self.cells.len()
@@ -253,22 +263,47 @@ impl Zone {
     }
 }
 
-/// Checks that zone ids are unique. Occurs as an error naming the first repeated id.
-pub fn check_unique_ids(zones: &[Zone]) -> Result<(), EngineError> {
-    let mut seen = std::collections::HashSet::with_capacity(zones.len());
+/// Checks that there is at least one zone and that zone ids are unique. Occurs as an error
+/// naming the first repeated id.
+pub fn check_zones(zones: &[Zone]) -> Result<(), EngineError> {
+    if zones.is_empty() {
+        return Err(EngineError::NothingToDo(Missing::Zones));
+    }
+    let mut seen = std::collections::HashMap::with_capacity(zones.len());
     for (i, z) in zones.iter().enumerate() {
-        if !seen.insert(z.id()) {
+        if let Some(&first) = seen.get(z.id()) {
             return Err(EngineError::InvalidZone {
                 zone: z.id().to_string(),
-                position: None,
-                detail: format!(
-                    "zone id `{}` is used twice (second time at zone {i}): give each zone its own id",
-                    z.id()
-                ),
+                problem: ZoneProblem::DuplicateId { first, second: i },
             });
         }
+        seen.insert(z.id(), i);
     }
     Ok(())
+}
+
+/// A checked list of zones: at least one, ids unique. The engine's entry points that take a
+/// `ZoneSet` do not check again.
+#[derive(Clone, Debug, PartialEq)]
+pub struct ZoneSet(Vec<Zone>);
+
+impl ZoneSet {
+    /// Occurs as an error for an empty list or a repeated id.
+    pub fn new(zones: Vec<Zone>) -> Result<ZoneSet, EngineError> {
+        check_zones(&zones)?;
+        Ok(ZoneSet(zones))
+    }
+    /// Cells over all zones, counted with multiplicity.
+    pub fn cell_count(&self) -> u64 {
+        self.0.iter().map(|z| z.len() as u64).sum()
+    }
+}
+
+impl Deref for ZoneSet {
+    type Target = [Zone];
+    fn deref(&self) -> &[Zone] {
+        &self.0
+    }
 }
 
 /// Default accuracy target: every reported probability within this of the exact value.
@@ -280,17 +315,13 @@ pub const MAX_TOLERANCE: f64 = 1e-3;
 /// Tightest tolerance: below it the truncation budget falls under f64 rounding.
 pub const MIN_TOLERANCE: f64 = 1e-15;
 
-/// What to report for each zone.
+/// What to report for each zone. Built checked by `Settings::new`; fields are read-only.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Settings {
-    /// Credible level of the equal-tailed interval, in (0, 1).
-    pub level: f64,
-    /// Thresholds k for the exceedance probabilities P(N >= k).
-    pub thresholds: Vec<u64>,
-    /// Accuracy target for the truncation (see `DEFAULT_TOLERANCE`).
-    pub tolerance: f64,
-    /// Whether the pmf itself is reported.
-    pub pmf: bool,
+    level: f64,
+    thresholds: Vec<u64>,
+    tolerance: f64,
+    pmf: bool,
 }
 
 impl Default for Settings {
@@ -313,20 +344,12 @@ impl Settings {
         pmf: bool,
     ) -> Result<Settings, EngineError> {
         if !(level > 0.0 && level < 1.0) {
-            return Err(EngineError::InvalidSetting {
-                field: "interval",
-                detail: format!(
-                    "interval level {level} must lie strictly between 0 and 1, e.g. 0.9"
-                ),
-            });
+            return Err(EngineError::InvalidSetting(SettingProblem::Level(level)));
         }
         if !(MIN_TOLERANCE..=MAX_TOLERANCE).contains(&tolerance) {
-            return Err(EngineError::InvalidSetting {
-                field: "tolerance",
-                detail: format!(
-                    "tolerance {tolerance} must lie in [{MIN_TOLERANCE:e}, {MAX_TOLERANCE:e}]; the default is {DEFAULT_TOLERANCE:e}"
-                ),
-            });
+            return Err(EngineError::InvalidSetting(SettingProblem::Tolerance(
+                tolerance,
+            )));
         }
         Ok(Settings {
             level,
@@ -334,5 +357,21 @@ impl Settings {
             tolerance,
             pmf,
         })
+    }
+    /// Credible level of the equal-tailed interval, in (0, 1).
+    pub fn level(&self) -> f64 {
+        self.level
+    }
+    /// Thresholds k for the exceedance probabilities P(N >= k).
+    pub fn thresholds(&self) -> &[u64] {
+        &self.thresholds
+    }
+    /// Accuracy target for the truncation (see `DEFAULT_TOLERANCE`).
+    pub fn tolerance(&self) -> f64 {
+        self.tolerance
+    }
+    /// Whether the pmf itself is reported.
+    pub fn pmf(&self) -> bool {
+        self.pmf
     }
 }

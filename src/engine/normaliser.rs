@@ -7,8 +7,10 @@
 
 use super::control::Control;
 use super::error::EngineError;
-use super::law::{gamma, Law, FFT_MIN_LEN, UNIT_ROUNDOFF};
+use super::evidence::Evidence;
+use super::law::{Law, FFT_MIN_LEN};
 use super::model::{Raster, MIN_TOLERANCE};
+use super::rounding::{gamma, UNIT_ROUNDOFF};
 use super::sets::{trims_for, Cells};
 use super::tilt::{self, Tilt};
 
@@ -62,24 +64,24 @@ pub struct Normaliser {
 }
 
 impl Normaliser {
-    /// Computes the normaliser of `raster` for observed total `total`.
+    /// Computes the normaliser of `raster` for observed total `total`, checking the total.
     ///
     /// Occurs as `ImpossibleTotal` when the total is below the number of cells with p = 1 or
     /// above the number with p > 0; as `Cancelled` when `control` asks.
     pub fn new(raster: &Raster, total: u64, control: &Control) -> Result<Normaliser, EngineError> {
+        Normaliser::of(raster, &Evidence::exact_total(total, raster)?, control)
+    }
+
+    /// Computes the normaliser of `raster` for evidence already checked against it.
+    ///
+    /// Occurs as `Cancelled` when `control` asks.
+    pub fn of(
+        raster: &Raster,
+        evidence: &Evidence,
+        control: &Control,
+    ) -> Result<Normaliser, EngineError> {
         let stats = *raster.stats();
-        if total < stats.certain {
-            return Err(EngineError::ImpossibleTotal(format!(
-                "observed total {total} is impossible: {} cells have p = 1, so at least {} events happened",
-                stats.certain, stats.certain
-            )));
-        }
-        let possible = stats.certain + stats.free;
-        if total > possible {
-            return Err(EngineError::ImpossibleTotal(format!(
-                "observed total {total} is impossible: only {possible} cells have p > 0, so at most {possible} events can happen"
-            )));
-        }
+        let total = evidence.total();
         control.check()?;
         let target = total - stats.certain;
         let prior_mean = stats.sum_p;

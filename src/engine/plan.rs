@@ -105,7 +105,7 @@ pub fn plan(raster: &Raster, zones: &[Zone]) -> Plan {
         .enumerate()
         .map(|(i, z)| {
             let (mut sr, mut sc) = (0.0, 0.0);
-            for &c in z.cells() {
+            for c in z.indices() {
                 sr += (c / raster.width()) as f64;
                 sc += (c % raster.width()) as f64;
             }
@@ -125,7 +125,7 @@ pub fn plan(raster: &Raster, zones: &[Zone]) -> Plan {
     let mut overlapping = false;
     let mut covered = 0u64;
     for z in zones {
-        for &c in z.cells() {
+        for c in z.indices() {
             let (word, bit) = ((c / 64) as usize, 1u64 << (c % 64));
             if seen[word] & bit != 0 {
                 overlapping = true;

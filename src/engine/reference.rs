@@ -14,11 +14,16 @@ fn pair(p: f64, t: f64) -> (f64, f64) {
 }
 
 /// P(N_S = k | N_T = total) for k = 0 ..= |zone|, or `None` when the total is impossible.
-pub fn conditional_pmf(raster: &Raster, zone: &[u32], total: u64) -> Option<Vec<f64>> {
+/// `zone` holds row-major cell indices (plain or as `CellIndex`).
+pub fn conditional_pmf<C: Copy + Into<u32>>(
+    raster: &Raster,
+    zone: &[C],
+    total: u64,
+) -> Option<Vec<f64>> {
     let values = raster.values();
     let mut inside = vec![false; values.len()];
     for &c in zone {
-        inside[c as usize] = true;
+        inside[c.into() as usize] = true;
     }
     let (mut ones_in, mut ones_out) = (0u64, 0u64);
     let (mut free_in, mut free_out) = (Vec::new(), Vec::new());

@@ -7,6 +7,7 @@
 //! same mass budget; the number of nodes is `trims_for(n)`.
 
 use super::law::{convolve, Law};
+use super::model::CellIndex;
 use super::tilt::{is_free, tilted};
 
 /// Cells folded one at a time before pairwise convolution takes over: below this the law is
@@ -29,8 +30,8 @@ pub(crate) struct Cells<'a> {
 
 impl Cells<'_> {
     /// Law of the free cells among `cells` (raster indices).
-    pub fn law_of(&self, cells: &[u32]) -> Law {
-        self.tree(cells.len(), &|i| cells[i] as usize, 0, cells.len())
+    pub fn law_of(&self, cells: &[CellIndex]) -> Law {
+        self.tree(cells.len(), &|i| cells[i].index(), 0, cells.len())
     }
 
     /// Law of the free cells in raster positions `[a, b)`.

@@ -36,13 +36,20 @@ pub struct ZoneSummary {
     pub error_bound: f64,
 }
 
+/// The summaries of one pmf.
+#[derive(Clone, Debug, PartialEq)]
+pub(crate) struct Summary {
+    pub mean: f64,
+    pub sd: f64,
+    pub mode: u64,
+    pub median: u64,
+    pub interval: Interval,
+    /// (k, P(N >= k)) for each threshold.
+    pub exceedance: Vec<(u64, f64)>,
+}
+
 /// Summarises a pmf over `offset ..` that sums to one.
-pub(crate) fn summarise(
-    offset: u64,
-    pmf: &[f64],
-    level: f64,
-    thresholds: &[u64],
-) -> (f64, f64, u64, u64, Interval, Vec<(u64, f64)>) {
+pub(crate) fn summarise(offset: u64, pmf: &[f64], level: f64, thresholds: &[u64]) -> Summary {
     let mean_rel: f64 = pmf.iter().enumerate().map(|(i, &p)| i as f64 * p).sum();
     let var: f64 = pmf
         .iter()
@@ -90,14 +97,14 @@ pub(crate) fn summarise(
             (k, p.min(1.0))
         })
         .collect();
-    (
-        offset as f64 + mean_rel,
-        var.sqrt(),
-        offset + mode as u64,
+    Summary {
+        mean: offset as f64 + mean_rel,
+        sd: var.sqrt(),
+        mode: offset + mode as u64,
         median,
         interval,
         exceedance,
-    )
+    }
 }
 
 #[cfg(test)]
@@ -108,8 +115,14 @@ mod tests {
     fn summaries_of_a_small_pmf() {
         // reference: closed form, Binomial(4, 1/2) = (1, 4, 6, 4, 1) / 16 shifted by 3
         let pmf = [1.0 / 16.0, 4.0 / 16.0, 6.0 / 16.0, 4.0 / 16.0, 1.0 / 16.0];
-        let (mean, sd, mode, median, interval, exc) =
-            summarise(3, &pmf, 0.8, &[0, 3, 4, 7, 8, 100]);
+        let Summary {
+            mean,
+            sd,
+            mode,
+            median,
+            interval,
+            exceedance: exc,
+        } = summarise(3, &pmf, 0.8, &[0, 3, 4, 7, 8, 100]);
         assert!((mean - 5.0).abs() < 1e-15);
         assert!((sd - 1.0).abs() < 1e-15);
         assert_eq!((mode, median), (5, 5));
@@ -131,7 +144,7 @@ mod tests {
 
     #[test]
     fn mode_takes_the_smallest_on_ties() {
-        let (_, _, mode, median, _, _) = summarise(0, &[0.25, 0.25, 0.25, 0.25], 0.5, &[]);
+        let Summary { mode, median, .. } = summarise(0, &[0.25, 0.25, 0.25, 0.25], 0.5, &[]);
         assert_eq!(mode, 0);
         // reference: closed form, CDF(1) = 0.5 reaches 1/2 first at k = 1
         assert_eq!(median, 1);

@@ -117,10 +117,13 @@ pub fn quantile_ok(exact_pmf: &[f64], t: f64, slack: f64, got: u64) -> bool {
 
 /// Evaluates with default settings plus `thresholds`, on the calling thread's rayon pool.
 pub fn evaluate(raster: &Raster, zones: &[Zone], total: u64, thresholds: Vec<u64>) -> Evaluation {
-    let settings = Settings {
+    let settings = Settings::new(
+        engine::DEFAULT_LEVEL,
         thresholds,
-        ..Settings::default()
-    };
+        engine::DEFAULT_TOLERANCE,
+        true,
+    )
+    .expect("default settings with thresholds are valid");
     engine::evaluate(raster, zones, total, &settings, &Control::new()).expect("evaluation succeeds")
 }
 

@@ -1,25 +1,19 @@
 //! `cell-posterior`: the posterior event probability of single cells given the observed total.
 
-use std::sync::Arc;
-
 use bytes::Bytes;
 use serde_json::{json, Value};
 
 use super::{
-    check_cost, check_total, engine_error, input, parse_execute, resolve_raster, schema_of,
-    Prepared, Process, ResponseMode,
+    check_cost, input, parse_execute, run_error, schema_of, to_json, Context, Prepared, Process,
+    ResponseMode,
 };
+use crate::api::decode::{self, DecodeError, DecodedCells};
 use crate::api::problem::ApiError;
-use crate::api::state::AppState;
 use crate::api::wire::{
     CellPosteriorOut, EvidenceSpec, PosteriorDocument, PosteriorInputs, PosteriorSummaries,
     RasterInput,
 };
-use crate::engine::{self, Control, Raster, Settings, DEFAULT_LEVEL, DEFAULT_TOLERANCE};
-
-/// Multiply-adds charged per valid cell of the raster and per requested cell; the engine's
-/// planner has no posterior cost yet, so this mirrors its per-cell folding charge.
-const COST_PER_CELL: f64 = 48.0;
+use crate::engine::{self, CellPlan, Control, EngineError, Evidence, Raster, Settings};
 
 pub struct CellPosteriorProcess;
 
@@ -52,118 +46,71 @@ impl Process for CellPosteriorProcess {
     fn prepare(
         &self,
         body: &[u8],
-        state: &AppState,
+        ctx: &Context,
     ) -> Result<(ResponseMode, Box<dyn Prepared>), ApiError> {
         let (req, mode): (PosteriorInputs, _) = parse_execute(body, OUTPUT)?;
-        let tolerance = req.summaries.tolerance.unwrap_or(DEFAULT_TOLERANCE);
-        let settings = Settings::new(DEFAULT_LEVEL, Vec::new(), tolerance, false).map_err(|e| {
-            ApiError::InvalidInput {
-                pointer: "/inputs/summaries/tolerance".into(),
-                detail: e.to_string(),
-            }
-        })?;
-        let (hash, raster) = resolve_raster(req.raster, state)?;
-        let limit = state.config().max_zone_cells;
-        if let Some(cells) = &req.cells {
-            if cells.len() as u64 > limit {
-                return Err(ApiError::TooLarge {
-                    pointer: "/inputs/cells".into(),
-                    detail: format!("{} cells exceed this service's limit of {limit}: send them in several requests", cells.len()),
-                });
-            }
-            check_cells(cells, &raster)?;
-        }
-        check_total(&raster, req.evidence.total)?;
-        let requested = req
-            .cells
-            .as_ref()
-            .map_or(raster.stats().valid, |c| c.len() as u64);
-        let cost = COST_PER_CELL * (raster.stats().valid + requested) as f64;
-        check_cost(cost, state)?;
-        Ok((
-            mode,
-            Box::new(Run {
-                hash,
-                raster,
-                cells: req.cells,
-                total: req.evidence.total,
-                settings,
-                cost,
-                requested,
-            }),
-        ))
+        let cells = prepare(req, ctx).map_err(|e| ApiError::from_decode(e, "/inputs"))?;
+        Ok((mode, Box::new(cells)))
     }
 }
 
-fn check_cells(cells: &[u32], raster: &Raster) -> Result<(), ApiError> {
-    let (w, h, last) = (raster.width(), raster.height(), raster.len() as u64 - 1);
-    for (i, &c) in cells.iter().enumerate() {
-        let pointer = format!("/inputs/cells/{i}");
-        if c as u64 > last {
-            return Err(ApiError::InvalidInput {
-                pointer,
-                detail: format!("cell {c} lies outside the {w}x{h} raster (last index {last})"),
-            });
-        }
-        if raster.values()[c as usize].is_nan() {
-            return Err(ApiError::InvalidInput {
-                pointer,
-                detail: format!(
-                    "cell {c} is nodata (outside the study area): remove it from the list"
-                ),
-            });
-        }
-    }
-    Ok(())
-}
-
-struct Run {
-    hash: String,
-    raster: Arc<Raster>,
-    cells: Option<Vec<u32>>,
-    total: u64,
+/// A decoded and planned `cell-posterior` request.
+pub struct Cells {
+    raster_key: Option<String>,
+    raster: std::sync::Arc<Raster>,
+    evidence: Evidence,
     settings: Settings,
-    cost: f64,
-    requested: u64,
+    plan: CellPlan,
 }
 
-impl Prepared for Run {
+/// Decodes and plans a request, refusing it when the planned cost is over the limit.
+pub fn prepare(req: PosteriorInputs, ctx: &Context) -> Result<Cells, DecodeError> {
+    let d: DecodedCells = decode::cell_posterior(req, &ctx.limits, ctx.rasters)?;
+    let plan = engine::plan_cells(&d.raster, d.cells);
+    check_cost(plan.estimated_cost(), &ctx.limits, "/cells")?;
+    Ok(Cells {
+        raster_key: d.raster_key,
+        raster: d.raster,
+        evidence: d.evidence,
+        settings: d.settings,
+        plan,
+    })
+}
+
+/// Runs a prepared request.
+pub fn compute(
+    c: &Cells,
+    ctx: &Context,
+    control: &Control,
+) -> Result<PosteriorDocument, EngineError> {
+    let d = c;
+    let normaliser =
+        ctx.normalisers
+            .normaliser(d.raster_key.as_deref(), &d.raster, &d.evidence, control)?;
+    let post = engine::posterior(&d.raster, &c.plan, &normaliser, &d.settings, control)?;
+    Ok(PosteriorDocument {
+        cells: post
+            .cells
+            .into_iter()
+            .map(|(cell, prior, posterior)| CellPosteriorOut {
+                cell,
+                prior,
+                posterior,
+            })
+            .collect(),
+        error_bound: post.error_bound,
+        total: normaliser.check.clone().into(),
+    })
+}
+
+impl Prepared for Cells {
     fn estimated_cost(&self) -> f64 {
-        self.cost
+        self.plan.estimated_cost()
     }
     fn cells(&self) -> u64 {
-        self.requested
+        self.plan.cells() as u64
     }
-    fn run(self: Box<Self>, state: &AppState, control: &Control) -> Result<Bytes, ApiError> {
-        let normaliser = state
-            .caches()
-            .normaliser(&self.hash, &self.raster, self.total, control)
-            .map_err(engine_error)?;
-        let post = engine::cell_posterior(
-            &self.raster,
-            self.cells.as_deref(),
-            &normaliser,
-            &self.settings,
-            control,
-        )
-        .map_err(engine_error)?;
-        let doc = PosteriorDocument {
-            cells: post
-                .cells
-                .into_iter()
-                .map(|(cell, prior, posterior)| CellPosteriorOut {
-                    cell,
-                    prior,
-                    posterior,
-                })
-                .collect(),
-            error_bound: post.error_bound,
-            total: normaliser.check.clone().into(),
-        };
-        serde_json::to_vec(&doc)
-            .map(Bytes::from)
-            .map_err(|e| ApiError::Internal {
-                cause: format!("cannot encode results: {e}"),
-            })
+    fn run(self: Box<Self>, ctx: &Context, control: &Control) -> Result<Bytes, ApiError> {
+        to_json(&compute(&self, ctx, control).map_err(run_error)?)
     }
 }

@@ -1,12 +1,14 @@
 //! The process registry: every OGC process the service offers, behind one trait, so a new
 //! process is one file and one line in `registry`.
 //!
-//! A process parses and validates its execute body (`prepare`, on a blocking thread), which
-//! yields a `Prepared` computation with its planned cost; running it (also on the pool) yields
-//! the JSON of its one output. Processes know the wire format and the engine, never HTTP.
+//! A process parses its execute body and decodes it through `decode` (on a blocking thread),
+//! which yields a `Prepared` computation with its planned cost; running it (on the compute pool)
+//! yields the JSON of its one output. Processes see a narrow `Context` (limits, where rasters
+//! and normalisers come from), never the service's state or HTTP; `zonetally eval` builds its
+//! own context and runs the same code.
 
-mod cell_posterior;
-mod zone_counts;
+pub mod cell_posterior;
+pub mod zone_counts;
 
 use std::collections::BTreeMap;
 use std::sync::Arc;
@@ -15,10 +17,9 @@ use bytes::Bytes;
 use serde::Deserialize;
 use serde_json::Value;
 
+use super::decode::{DecodeError, Limits, RasterSource};
 use super::problem::ApiError;
-use super::state::AppState;
-use super::wire::{DecodeError, RasterInput};
-use crate::engine::{Control, EngineError, Raster};
+use crate::engine::{Control, EngineError, Evidence, Normaliser, Raster};
 
 /// Every process offered, in listing order.
 pub fn registry() -> Vec<Arc<dyn Process>> {
@@ -26,6 +27,41 @@ pub fn registry() -> Vec<Arc<dyn Process>> {
         Arc::new(zone_counts::ZoneCounts),
         Arc::new(cell_posterior::CellPosteriorProcess),
     ]
+}
+
+/// Where normalisers come from: the service's cache, or computed on the spot.
+pub trait NormaliserSource: Sync {
+    /// The normaliser of (raster, evidence); `raster_key` names the raster in its source.
+    fn normaliser(
+        &self,
+        raster_key: Option<&str>,
+        raster: &Raster,
+        evidence: &Evidence,
+        control: &Control,
+    ) -> Result<Arc<Normaliser>, EngineError>;
+}
+
+/// Computes every normaliser afresh (the command line's source).
+pub struct Uncached;
+
+impl NormaliserSource for Uncached {
+    fn normaliser(
+        &self,
+        _: Option<&str>,
+        raster: &Raster,
+        evidence: &Evidence,
+        control: &Control,
+    ) -> Result<Arc<Normaliser>, EngineError> {
+        Normaliser::of(raster, evidence, control).map(Arc::new)
+    }
+}
+
+/// What a process may use: its limits, and where rasters and normalisers come from.
+#[derive(Clone, Copy)]
+pub struct Context<'a> {
+    pub limits: Limits,
+    pub rasters: &'a dyn RasterSource,
+    pub normalisers: &'a dyn NormaliserSource,
 }
 
 pub trait Process: Send + Sync + 'static {
@@ -42,7 +78,7 @@ pub trait Process: Send + Sync + 'static {
     fn prepare(
         &self,
         body: &[u8],
-        state: &AppState,
+        ctx: &Context,
     ) -> Result<(ResponseMode, Box<dyn Prepared>), ApiError>;
 }
 
@@ -53,7 +89,7 @@ pub trait Prepared: Send {
     /// Cells the computation goes through, for the cells-processed counter.
     fn cells(&self) -> u64;
     /// Computes the output and returns its JSON. Runs on the compute pool.
-    fn run(self: Box<Self>, state: &AppState, control: &Control) -> Result<Bytes, ApiError>;
+    fn run(self: Box<Self>, ctx: &Context, control: &Control) -> Result<Bytes, ApiError>;
 }
 
 /// `response` of the execute body: the output alone (`raw`, the default) or `{output: ...}`.
@@ -114,84 +150,36 @@ pub(crate) fn parse_execute<I: serde::de::DeserializeOwned>(
     Ok((parsed.inputs, parsed.response.unwrap_or_default()))
 }
 
-/// The raster of a request, from the cache when referenced, hashed and kept when inline.
-pub(crate) fn resolve_raster(
-    input: RasterInput,
-    state: &AppState,
-) -> Result<(String, Arc<Raster>), ApiError> {
-    match input {
-        RasterInput::Ref(r) => {
-            if !super::cache::is_hash(&r.reference) {
-                return Err(ApiError::InvalidInput {
-                    pointer: "/inputs/raster/ref".into(),
-                    detail: format!("`{}` is not a raster reference: it must be `sha256:` and 64 lowercase hex digits, as returned by POST /rasters", r.reference),
-                });
-            }
-            let held =
-                state
-                    .caches()
-                    .raster(&r.reference)
-                    .ok_or_else(|| ApiError::UnknownRaster {
-                        pointer: "/inputs/raster/ref".into(),
-                        reference: r.reference.clone(),
-                    })?;
-            Ok((r.reference, held))
-        }
-        RasterInput::Inline(spec) => {
-            let raster = super::wire::decode_raster(spec, &state.config().limits())
-                .map_err(|e| ApiError::from_decode(e, "/inputs"))?;
-            Ok(state.caches().keep_raster(raster))
-        }
-    }
-}
-
-/// Refuses a total the raster cannot produce before any work is queued for it.
-pub(crate) fn check_total(raster: &Raster, total: u64) -> Result<(), ApiError> {
-    let s = raster.stats();
-    let most = s.certain + s.free;
-    let detail = if total < s.certain {
-        format!("observed total {total} is impossible: {} cells have p = 1, so at least {} events happened", s.certain, s.certain)
-    } else if total > most {
-        format!("observed total {total} is impossible: only {most} cells have p > 0, so at most {most} events can happen")
-    } else {
-        return Ok(());
-    };
-    Err(ApiError::InvalidInput {
-        pointer: "/inputs/evidence/total".into(),
-        detail,
-    })
-}
-
-/// Maps an engine error to the request field to blame (inputs were validated, so these are rare).
-pub(crate) fn engine_error(e: EngineError) -> ApiError {
-    match e {
-        EngineError::Cancelled => ApiError::Cancelled,
-        EngineError::TooLarge(detail) => ApiError::TooLarge {
-            pointer: "/inputs".into(),
-            detail,
-        },
-        other => {
-            let pointer = format!("/inputs{}", super::wire::engine_pointer(&other));
-            ApiError::InvalidInput {
-                pointer,
-                detail: other.to_string(),
-            }
-        }
-    }
-}
-
-pub(crate) fn check_cost(cost: f64, state: &AppState) -> Result<(), ApiError> {
-    let max = state.config().max_cost;
+/// Refuses a planned cost above the limit; `pointer` names what to send less of.
+pub(crate) fn check_cost(cost: f64, limits: &Limits, pointer: &str) -> Result<(), DecodeError> {
+    let max = limits.max_cost;
     if cost > max {
-        return Err(ApiError::from_decode(
-            DecodeError::limit(
-                "/zones",
-                format!("the planned cost {cost:.3e} exceeds this service's limit of {max:.3e}: send fewer or smaller zones, or split the area"),
-            ),
-            "/inputs",
+        return Err(DecodeError::limit(
+            pointer,
+            format!("the planned cost {cost:.3e} exceeds this service's limit of {max:.3e}: send fewer or smaller zones, or split the area"),
         ));
     }
     Ok(())
+}
+
+/// An engine error raised while running a decoded request. Inputs were validated, so anything
+/// but cancellation is a fault of ours.
+pub(crate) fn run_error(e: EngineError) -> ApiError {
+    match e {
+        EngineError::Cancelled => ApiError::Cancelled,
+        other => ApiError::Internal {
+            cause: format!("a decoded request failed in the engine: {other}"),
+        },
+    }
+}
+
+/// Encodes an output document as compact JSON.
+pub(crate) fn to_json<T: serde::Serialize>(doc: &T) -> Result<Bytes, ApiError> {
+    serde_json::to_vec(doc)
+        .map(Bytes::from)
+        .map_err(|e| ApiError::Internal {
+            cause: format!("cannot encode results: {e}"),
+        })
 }
 
 /// The JSON schema of a wire type, with its `$ref`s pointing into the served OpenAPI document

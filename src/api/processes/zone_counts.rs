@@ -1,21 +1,19 @@
 //! `zone-counts`: the conditional distribution of the event count in each zone given the
 //! observed total, plus the total check. Inputs are exactly the document `zonetally eval` reads.
 
-use std::sync::Arc;
-
 use bytes::Bytes;
 use serde_json::{json, Value};
 
 use super::{
-    check_cost, check_total, engine_error, input, parse_execute, resolve_raster, schema_of,
-    Prepared, Process, ResponseMode,
+    check_cost, input, parse_execute, run_error, schema_of, to_json, Context, Prepared, Process,
+    ResponseMode,
 };
+use crate::api::decode::{self, DecodeError, Decoded};
 use crate::api::problem::ApiError;
-use crate::api::state::AppState;
 use crate::api::wire::{
-    self, EvalRequest, EvidenceSpec, RasterInput, ResultsDocument, SummariesSpec, ZoneSpec,
+    EvalRequest, EvidenceSpec, RasterInput, ResultsDocument, SummariesSpec, ZoneSpec,
 };
-use crate::engine::{self, Control, Plan, Raster, Settings, Zone};
+use crate::engine::{self, Control, EngineError, Plan};
 
 pub struct ZoneCounts;
 
@@ -48,70 +46,60 @@ impl Process for ZoneCounts {
     fn prepare(
         &self,
         body: &[u8],
-        state: &AppState,
+        ctx: &Context,
     ) -> Result<(ResponseMode, Box<dyn Prepared>), ApiError> {
         let (req, mode): (EvalRequest, _) = parse_execute(body, OUTPUT)?;
-        let limits = state.config().limits();
-        let settings = wire::decode_settings(req.summaries)
-            .map_err(|e| ApiError::from_decode(e, "/inputs"))?;
-        let (hash, raster) = resolve_raster(req.raster, state)?;
-        let zones = wire::decode_zones(req.zones, &raster, &limits)
-            .map_err(|e| ApiError::from_decode(e, "/inputs"))?;
-        check_total(&raster, req.evidence.total)?;
-        let plan = engine::plan(&raster, &zones);
-        check_cost(plan.estimated_cost, state)?;
-        Ok((
-            mode,
-            Box::new(Run {
-                hash,
-                raster,
-                zones,
-                total: req.evidence.total,
-                settings,
-                plan,
-            }),
-        ))
+        let counts = prepare(req, ctx).map_err(|e| ApiError::from_decode(e, "/inputs"))?;
+        Ok((mode, Box::new(counts)))
     }
 }
 
-struct Run {
-    hash: String,
-    raster: Arc<Raster>,
-    zones: Vec<Zone>,
-    total: u64,
-    settings: Settings,
+/// A decoded and planned `zone-counts` request.
+pub struct Counts {
+    decoded: Decoded,
     plan: Plan,
 }
 
-impl Prepared for Run {
+/// Decodes and plans a request document, refusing it when the planned cost is over the limit.
+pub fn prepare(req: EvalRequest, ctx: &Context) -> Result<Counts, DecodeError> {
+    let decoded = decode::zone_counts(req, &ctx.limits, ctx.rasters)?;
+    let plan = engine::plan(&decoded.raster, &decoded.zones);
+    check_cost(plan.estimated_cost, &ctx.limits, "/zones")?;
+    Ok(Counts { decoded, plan })
+}
+
+/// Runs a prepared request: the normaliser (from the context's source), then the union tree.
+pub fn compute(
+    c: &Counts,
+    ctx: &Context,
+    control: &Control,
+) -> Result<ResultsDocument, EngineError> {
+    let d = &c.decoded;
+    let normaliser =
+        ctx.normalisers
+            .normaliser(d.raster_key.as_deref(), &d.raster, &d.evidence, control)?;
+    let zones = engine::execute(
+        &c.plan,
+        &d.raster,
+        &d.zones,
+        &normaliser,
+        &d.settings,
+        control,
+    )?;
+    Ok(ResultsDocument {
+        zones: zones.into_iter().map(Into::into).collect(),
+        total: normaliser.check.clone().into(),
+    })
+}
+
+impl Prepared for Counts {
     fn estimated_cost(&self) -> f64 {
         self.plan.estimated_cost
     }
     fn cells(&self) -> u64 {
-        self.zones.iter().map(|z| z.len() as u64).sum()
+        self.decoded.zones.cell_count()
     }
-    fn run(self: Box<Self>, state: &AppState, control: &Control) -> Result<Bytes, ApiError> {
-        let normaliser = state
-            .caches()
-            .normaliser(&self.hash, &self.raster, self.total, control)
-            .map_err(engine_error)?;
-        let zones = engine::execute(
-            &self.plan,
-            &self.raster,
-            &self.zones,
-            &normaliser,
-            &self.settings,
-            control,
-        )
-        .map_err(engine_error)?;
-        let doc = ResultsDocument {
-            zones: zones.into_iter().map(Into::into).collect(),
-            total: normaliser.check.clone().into(),
-        };
-        serde_json::to_vec(&doc)
-            .map(Bytes::from)
-            .map_err(|e| ApiError::Internal {
-                cause: format!("cannot encode results: {e}"),
-            })
+    fn run(self: Box<Self>, ctx: &Context, control: &Control) -> Result<Bytes, ApiError> {
+        to_json(&compute(&self, ctx, control).map_err(run_error)?)
     }
 }
