@@ -340,7 +340,7 @@ fn settings(spec: SummariesSpec) -> Result<Settings, DecodeError> {
     .map_err(|e| {
         let field = match &e {
             EngineError::InvalidSetting(SettingProblem::Level(_)) => "/summaries/interval",
-            EngineError::InvalidSetting(SettingProblem::Tolerance(_)) => "/summaries/tolerance",
+            EngineError::InvalidSetting(SettingProblem::Tolerance { .. }) => "/summaries/tolerance",
             _ => "/summaries",
         };
         DecodeError::at(field, e.to_string())

@@ -13,7 +13,7 @@ use serde::Serialize;
 use sha2::{Digest, Sha256};
 use utoipa::ToSchema;
 
-use super::ogc::{link, Link, JSON, OGC_REL};
+use super::links::{link, Link, JSON, OGC_REL};
 use super::problem::{ApiError, Problem};
 use super::state::AppState;
 use crate::jobs::{JobFilter, JobRecord, JobState, Outcome};

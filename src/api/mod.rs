@@ -11,6 +11,7 @@ pub mod cache;
 pub mod config;
 pub mod decode;
 pub mod jobs;
+pub mod links;
 pub mod metrics;
 pub mod ogc;
 pub mod ops;

@@ -20,6 +20,7 @@ use utoipa::ToSchema;
 
 use super::body;
 use super::jobs::{status_info, StatusInfo};
+use super::links::{link, Link, JSON, OGC_REL};
 use super::problem::{ApiError, Problem};
 use super::processes::{Prepared, Process, ResponseMode};
 use super::state::AppState;
@@ -27,34 +28,9 @@ use crate::engine::Control;
 use crate::jobs::{CancelOnDrop, WorkError};
 
 const CONF: &str = "http://www.opengis.net/spec/ogcapi-processes-1/1.0/conf";
-pub(crate) const OGC_REL: &str = "http://www.opengis.net/def/rel/ogc/1.0";
+
 /// Media type of the service description link, as OGC API and OpenAPI 3.1 name it.
 pub const OPENAPI_MEDIA_TYPE: &str = "application/vnd.oai.openapi+json;version=3.1";
-pub(crate) const JSON: &str = "application/json";
-
-#[derive(Clone, Debug, Serialize, ToSchema)]
-pub struct Link {
-    pub href: String,
-    pub rel: String,
-    #[serde(rename = "type", skip_serializing_if = "Option::is_none")]
-    pub media_type: Option<String>,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub title: Option<String>,
-}
-
-pub(crate) fn link(
-    href: impl Into<String>,
-    rel: impl Into<String>,
-    media_type: &str,
-    title: &str,
-) -> Link {
-    Link {
-        href: href.into(),
-        rel: rel.into(),
-        media_type: Some(media_type.into()),
-        title: Some(title.into()),
-    }
-}
 
 #[derive(Serialize, ToSchema)]
 pub struct LandingPage {

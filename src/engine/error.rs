@@ -52,11 +52,16 @@ pub enum Missing {
     Cells,
 }
 
-/// Which setting is out of range, with its value.
+/// Which setting is out of range, with its value (and, for the tolerance, the range and default).
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub enum SettingProblem {
     Level(f64),
-    Tolerance(f64),
+    Tolerance {
+        value: f64,
+        min: f64,
+        max: f64,
+        default: f64,
+    },
 }
 
 /// An observed total the raster cannot produce: below the cells with p = 1 (`certain`) or above
@@ -177,13 +182,15 @@ impl fmt::Display for EngineError {
                 f,
                 "interval level {level} must lie strictly between 0 and 1, e.g. 0.9"
             ),
-            EngineError::InvalidSetting(SettingProblem::Tolerance(tolerance)) => {
-                use super::model::{DEFAULT_TOLERANCE, MAX_TOLERANCE, MIN_TOLERANCE};
-                write!(
-                    f,
-                    "tolerance {tolerance} must lie in [{MIN_TOLERANCE:e}, {MAX_TOLERANCE:e}]; the default is {DEFAULT_TOLERANCE:e}"
-                )
-            }
+            EngineError::InvalidSetting(SettingProblem::Tolerance {
+                value,
+                min,
+                max,
+                default,
+            }) => write!(
+                f,
+                "tolerance {value} must lie in [{min:e}, {max:e}]; the default is {default:e}"
+            ),
             EngineError::ImpossibleTotal(t) => {
                 if t.total < t.certain {
                     write!(

@@ -347,9 +347,12 @@ impl Settings {
             return Err(EngineError::InvalidSetting(SettingProblem::Level(level)));
         }
         if !(MIN_TOLERANCE..=MAX_TOLERANCE).contains(&tolerance) {
-            return Err(EngineError::InvalidSetting(SettingProblem::Tolerance(
-                tolerance,
-            )));
+            return Err(EngineError::InvalidSetting(SettingProblem::Tolerance {
+                value: tolerance,
+                min: MIN_TOLERANCE,
+                max: MAX_TOLERANCE,
+                default: DEFAULT_TOLERANCE,
+            }));
         }
         Ok(Settings {
             level,
