@@ -8,6 +8,7 @@ pub mod api;
 pub mod bench;
 pub mod cli;
 pub mod engine;
+pub mod geo;
 pub mod jobs;
 
 pub use api::config::Config;
