@@ -65,7 +65,8 @@ const RASTER_PIXEL_IS_POINT: u16 = 2;
 const USER_DEFINED: u16 = 32767;
 
 /// TIFF compression codes accepted on input: none, LZW, deflate (Adobe), deflate (old code).
-const COMPRESSION_ACCEPTED: [u16; 4] = [1, 5, 8, 32946];
+const COMPRESSION_ACCEPTED: [u16; 4] = [1, COMPRESSION_LZW, 8, 32946];
+const COMPRESSION_LZW: u16 = 5;
 
 const DECODE_HINT: &str = "send a complete single-band GeoTIFF (uncompressed, deflate or LZW)";
 
@@ -108,7 +109,7 @@ fn read_checked(bytes: &[u8], limits: &ReadLimits) -> Result<TiffRaster, GeoErro
         return Err(GeoError::BandCount { bands });
     }
     let sample_kind = sample_kind(&mut decoder)?;
-    check_layout(&mut decoder)?;
+    let compression = check_layout(&mut decoder)?;
 
     let transform = read_transform(&mut decoder)?;
     let keys = read_geokeys(&mut decoder)?;
@@ -133,7 +134,24 @@ fn read_checked(bytes: &[u8], limits: &ReadLimits) -> Result<TiffRaster, GeoErro
         usize::try_from(limits.max_cells.saturating_mul(WIDEST_SAMPLE_BYTES)).unwrap_or(usize::MAX);
     let mut decoder = decoder.with_limits(tiff_limits);
 
-    let decoded = decoder.read_image().map_err(decode_error)?;
+    // tiff 0.10's LZW reader stops on some tiled streams GDAL writes (with a panic, caught
+    // here): name that case so the fix (re-save with deflate) is clear.
+    let decoded = match catch_unwind(AssertUnwindSafe(|| decoder.read_image())) {
+        Ok(Ok(decoded)) => decoded,
+        Ok(Err(TiffError::IoError(e))) if compression == COMPRESSION_LZW => {
+            return Err(lzw_failure(e.to_string()))
+        }
+        Ok(Err(e)) => return Err(decode_error(e)),
+        Err(_) if compression == COMPRESSION_LZW => {
+            return Err(lzw_failure("the LZW decoder stopped mid-stream".into()))
+        }
+        Err(_) => {
+            return Err(GeoError::TiffDecode {
+                detail: "the decoder met an internal inconsistency".into(),
+                hint: DECODE_HINT,
+            })
+        }
+    };
     let samples: Vec<f64> = match (decoded, sample_kind) {
         (DecodingResult::F32(v), SampleKind::F32) => v.into_iter().map(f64::from).collect(),
         (DecodingResult::F64(v), SampleKind::F64) => v,
@@ -166,6 +184,14 @@ fn read_checked(bytes: &[u8], limits: &ReadLimits) -> Result<TiffRaster, GeoErro
         nodata,
         sample_kind,
     })
+}
+
+fn lzw_failure(detail: String) -> GeoError {
+    GeoError::TiffUnsupported {
+        feature: "this LZW stream",
+        value: detail,
+        hint: "re-save the raster with deflate compression (or LZW with striped layout)",
+    }
 }
 
 fn decode_error(err: TiffError) -> GeoError {
@@ -256,7 +282,8 @@ fn sample_kind(decoder: &mut Decoder<Cursor<&[u8]>>) -> Result<SampleKind, GeoEr
     }
 }
 
-fn check_layout(decoder: &mut Decoder<Cursor<&[u8]>>) -> Result<(), GeoError> {
+/// Checks compression, predictor and photometric interpretation; returns the compression code.
+fn check_layout(decoder: &mut Decoder<Cursor<&[u8]>>) -> Result<u16, GeoError> {
     let compression = find_unsigned::<u16>(decoder, Tag::Compression, "Compression")?.unwrap_or(1);
     if !COMPRESSION_ACCEPTED.contains(&compression) {
         return Err(GeoError::TiffUnsupported {
@@ -283,7 +310,7 @@ fn check_layout(decoder: &mut Decoder<Cursor<&[u8]>>) -> Result<(), GeoError> {
             hint: "re-save the band as plain greyscale (min-is-black) values",
         });
     }
-    Ok(())
+    Ok(compression)
 }
 
 fn find_doubles(

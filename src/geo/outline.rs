@@ -6,7 +6,7 @@
 //! are split there, so no ring touches itself (the result is valid under the OGC simple
 //! features rules). Memory grows with the number of cells given, never with the grid.
 
-use std::collections::HashMap;
+use std::collections::{BTreeMap, HashMap};
 
 use serde_json::{json, Value};
 
@@ -144,9 +144,10 @@ pub fn trace(cells: &[u32], grid: &Grid) -> Result<Vec<Polygon>, GeoError> {
                 _ => break,
             }
         }
-        corners.push(corners[0]);
         let group = root(&mut parent, edges[start].cell);
-        rings.push((group, drop_collinear(corners)));
+        for simple in split_at_repeats(corners) {
+            rings.push((group, drop_collinear(simple)));
+        }
     }
 
     let to_map = |(c, r): (u32, u32)| -> [f64; 2] {
@@ -155,29 +156,119 @@ pub fn trace(cells: &[u32], grid: &Grid) -> Result<Vec<Polygon>, GeoError> {
             transform.origin_y - f64::from(r) * transform.cell_height,
         ]
     };
-    let mut by_group: std::collections::BTreeMap<
-        usize,
-        (Option<Vec<[f64; 2]>>, Vec<Vec<[f64; 2]>>),
-    > = std::collections::BTreeMap::new();
+    // Per group: its outer rings (one, unless a pinch split it) and holes, in lattice corners.
+    let mut by_group: BTreeMap<usize, GroupRings> = BTreeMap::new();
     for (group, corners) in rings {
-        let ring: Vec<[f64; 2]> = corners.into_iter().map(to_map).collect();
         let entry = by_group.entry(group).or_default();
-        if signed_area(&ring) > 0.0 {
-            entry.0 = Some(ring);
+        if lattice_area(&corners) > 0 {
+            entry.outers.push(corners);
         } else {
-            entry.1.push(ring);
+            entry.holes.push(corners);
         }
     }
-    Ok(by_group
-        .into_values()
-        .filter_map(|(outer, holes)| {
-            outer.map(|outer| {
-                let mut rings = vec![outer];
-                rings.extend(holes);
-                Polygon { rings }
-            })
+    let mut polygons = Vec::new();
+    for group in by_group.into_values() {
+        let mut parts: Vec<Vec<Vec<(u32, u32)>>> =
+            group.outers.into_iter().map(|o| vec![o]).collect();
+        for hole in group.holes {
+            let probe = inside_point(&hole);
+            // The smallest outer ring around the hole holds it.
+            let owner = parts
+                .iter()
+                .enumerate()
+                .filter(|(_, p)| contains(&p[0], probe))
+                .min_by_key(|(_, p)| lattice_area(&p[0]))
+                .map(|(i, _)| i);
+            if let Some(i) = owner {
+                parts[i].push(hole);
+            }
+        }
+        for rings in parts {
+            polygons.push(Polygon {
+                rings: rings
+                    .into_iter()
+                    .map(|r| r.into_iter().map(to_map).collect())
+                    .collect(),
+            });
+        }
+    }
+    Ok(polygons)
+}
+
+#[derive(Default)]
+struct GroupRings {
+    outers: Vec<Vec<(u32, u32)>>,
+    holes: Vec<Vec<(u32, u32)>>,
+}
+
+/// Split a closed walk of corners (first not repeated) into simple closed rings wherever it
+/// revisits a corner; the loop pinched off there becomes a ring of its own.
+fn split_at_repeats(walk: Vec<(u32, u32)>) -> Vec<Vec<(u32, u32)>> {
+    let mut out = Vec::new();
+    let mut stack: Vec<(u32, u32)> = Vec::with_capacity(walk.len());
+    let mut seen: HashMap<(u32, u32), usize> = HashMap::new();
+    for corner in walk {
+        if let Some(&at) = seen.get(&corner) {
+            let mut ring: Vec<(u32, u32)> = stack.drain(at..).collect();
+            for c in &ring[1..] {
+                seen.remove(c);
+            }
+            ring.push(corner);
+            out.push(ring);
+        }
+        seen.insert(corner, stack.len());
+        stack.push(corner);
+    }
+    if let Some(&first) = stack.first() {
+        stack.push(first);
+        out.push(stack);
+    }
+    out
+}
+
+/// Twice the signed area of a closed lattice ring, in map orientation (positive is
+/// counter-clockwise in map coordinates, whose y runs against the row index).
+fn lattice_area(ring: &[(u32, u32)]) -> i64 {
+    -ring
+        .windows(2)
+        .map(|w| {
+            let (a, b) = (w[0], w[1]);
+            i64::from(a.0) * i64::from(b.1) - i64::from(b.0) * i64::from(a.1)
         })
-        .collect())
+        .sum::<i64>()
+}
+
+/// Twice the lattice coordinates of a cell centre just inside a hole: beside the middle of
+/// its first edge, on the side the hole encloses. Never on a lattice line, so containment
+/// tests on it have no ties.
+fn inside_point(hole: &[(u32, u32)]) -> (i64, i64) {
+    let (a, b) = (hole[0], hole[1]);
+    let (ax, ay, bx, by) = (
+        i64::from(a.0),
+        i64::from(a.1),
+        i64::from(b.0),
+        i64::from(b.1),
+    );
+    let (dx, dy) = ((bx - ax).signum(), (by - ay).signum());
+    // The first unit step of the edge, then half a cell to its left in (column, row): holes
+    // run clockwise in map coordinates, which is counter-clockwise in (column, row), so the
+    // hole lies on the left.
+    let (mx, my) = (2 * ax + dx, 2 * ay + dy);
+    (mx - dy, my + dx)
+}
+
+/// Even-odd containment of a point given in doubled lattice coordinates.
+fn contains(ring: &[(u32, u32)], (px, py): (i64, i64)) -> bool {
+    let mut inside = false;
+    for w in ring.windows(2) {
+        let (x0, y0) = (2 * i64::from(w[0].0), 2 * i64::from(w[0].1));
+        let (x1, y1) = (2 * i64::from(w[1].0), 2 * i64::from(w[1].1));
+        // Vertical edges only can cross a horizontal ray to the right.
+        if x0 == x1 && x0 > px && (y0 > py) != (y1 > py) {
+            inside = !inside;
+        }
+    }
+    inside
 }
 
 /// The outline of `cells` as a GeoJSON MultiPolygon geometry.
@@ -214,6 +305,7 @@ fn drop_collinear(ring: Vec<(u32, u32)>) -> Vec<(u32, u32)> {
 }
 
 /// Twice the signed area (positive for counter-clockwise, y up).
+#[cfg(test)]
 fn signed_area(ring: &[[f64; 2]]) -> f64 {
     ring.windows(2)
         .map(|w| w[0][0] * w[1][1] - w[1][0] * w[0][1])
