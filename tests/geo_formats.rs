@@ -283,7 +283,7 @@ fn rasterize_centre_and_touch_rules() {
     };
     // reference: closed form: the square holds exactly one cell centre.
     assert_eq!(
-        zones::rasterize(&[inner.clone()], &g, false),
+        zones::rasterize(std::slice::from_ref(&inner), &g, false),
         vec![2 * 6 + 3]
     );
     assert_eq!(zones::rasterize(&[inner], &g, true), vec![2 * 6 + 3]);
@@ -291,7 +291,7 @@ fn rasterize_centre_and_touch_rules() {
     let off = Polygon {
         rings: vec![rect(3.05, 3.05, 3.2, 3.2)],
     };
-    assert!(zones::rasterize(&[off.clone()], &g, false).is_empty());
+    assert!(zones::rasterize(std::slice::from_ref(&off), &g, false).is_empty());
     assert_eq!(zones::rasterize(&[off], &g, true), vec![2 * 6 + 3]);
     // Whole grid and beyond: every cell once, in order.
     let all = Polygon {

@@ -142,6 +142,9 @@ fn tiff_cases(dir: &Path, tally: &mut Tally) {
     }
 }
 
+/// File name, grid, bands and nodata of one GeoTIFF we write.
+type OurTiff<'a> = (&'a str, Grid, Vec<&'a [f64]>, Option<f64>);
+
 /// Our GeoTIFFs for the script to read with rasterio.
 fn write_ours(dir: &Path) {
     let out = dir.join("ours");
@@ -162,7 +165,7 @@ fn write_ours(dir: &Path) {
     let utm = GeoTransform::new(612_000.0, 4_388_000.0, 20.0, 20.0).unwrap();
     let lonlat = GeoTransform::new(-73.25, 12.5, 0.0625, 0.0625).unwrap();
     let (b1, b2) = (band(0.0), band(1.5));
-    let specs: Vec<(&str, Grid, Vec<&[f64]>, Option<f64>)> = vec![
+    let specs: Vec<OurTiff> = vec![
         (
             "one_band_utm.tif",
             Grid {

@@ -1097,7 +1097,7 @@ mod tests {
         let g = unit_grid(5, 5);
         let p = square(1.0, 1.0, 3.0, 3.0);
         let expected = vec![2 * 5 + 1, 2 * 5 + 2, 3 * 5 + 1, 3 * 5 + 2];
-        assert_eq!(rasterize(&[p.clone()], &g, false), expected);
+        assert_eq!(rasterize(std::slice::from_ref(&p), &g, false), expected);
         assert_eq!(rasterize(&[p], &g, true), expected);
     }
 
