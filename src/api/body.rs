@@ -1,12 +1,166 @@
-//! Reading JSON request bodies: media type, size, nesting depth, then serde with the path of the
-//! first error turned into a JSON pointer. Extractor rejections land here too, so every
-//! malformed body gets a problem document of the same shape.
+//! Reading JSON request bodies: content coding, the time the body may take, media type, size,
+//! nesting depth, then serde with the path of the first error turned into a JSON pointer.
+//! Extractor rejections land here too, so every malformed body gets a problem document of the
+//! same shape. Numbers are read correctly rounded (serde_json's `float_roundtrip`).
 
+use std::future::Future;
+use std::pin::Pin;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+use std::task::{Context, Poll};
+use std::time::Duration;
+
+use axum::body::Body;
 use axum::extract::rejection::BytesRejection;
-use axum::http::{header, HeaderMap, StatusCode};
+use axum::extract::{Request, State};
+use axum::http::{header, HeaderMap, HeaderValue, StatusCode};
+use axum::middleware::Next;
+use axum::response::{IntoResponse, Response};
+use bytes::Bytes;
+use http_body::{Body as HttpBody, Frame, SizeHint};
 use serde::de::DeserializeOwned;
 
-use super::problem::ApiError;
+use super::problem::{ApiError, Problem, PROBLEM_JSON};
+use super::state::AppState;
+
+/// A problem document of one of our own types (`/problems/{kind}`) for failures that
+/// `ApiError` does not name: those found by the socket and body layers.
+pub fn problem_response(status: StatusCode, kind: &str, title: &str, detail: String) -> Response {
+    let problem = Problem {
+        kind: format!("/problems/{kind}"),
+        title: title.to_string(),
+        status: status.as_u16(),
+        detail,
+        pointer: None,
+    };
+    (
+        status,
+        [(header::CONTENT_TYPE, HeaderValue::from_static(PROBLEM_JSON))],
+        serde_json::to_vec(&problem).unwrap_or_default(),
+    )
+        .into_response()
+}
+
+/// Whether a request carries a body (or may: chunked bodies have no length up front).
+fn has_body(req: &Request) -> bool {
+    req.body().size_hint().exact() != Some(0)
+}
+
+/// Middleware refusing with 415 any request body sent with a `Content-Encoding` other than
+/// `identity`: this service reads bodies as sent, and decompressing would let a small body
+/// grow past every size limit before it is checked.
+pub async fn refuse_encoded(req: Request, next: Next) -> Response {
+    let codings: Vec<String> = req
+        .headers()
+        .get_all(header::CONTENT_ENCODING)
+        .iter()
+        .flat_map(|v| {
+            String::from_utf8_lossy(v.as_bytes())
+                .split(',')
+                .map(|c| c.trim().to_ascii_lowercase())
+                .filter(|c| !c.is_empty())
+                .collect::<Vec<_>>()
+        })
+        .collect();
+    let foreign: Vec<&String> = codings.iter().filter(|c| *c != "identity").collect();
+    if foreign.is_empty() || !has_body(&req) {
+        return next.run(req).await;
+    }
+    let named = foreign
+        .iter()
+        .map(|c| format!("`{c}`"))
+        .collect::<Vec<_>>()
+        .join(", ");
+    let mut resp = problem_response(
+        StatusCode::UNSUPPORTED_MEDIA_TYPE,
+        "unsupported-content-encoding",
+        "unsupported content encoding",
+        format!("the body is labelled `Content-Encoding: {named}`, which this service does not decode: send the body uncompressed, without a Content-Encoding header (or with `identity`)"),
+    );
+    // RFC 9110, 15.5.16: a 415 caused by a content coding says which codings would do.
+    resp.headers_mut().insert(
+        header::ACCEPT_ENCODING,
+        HeaderValue::from_static("identity"),
+    );
+    resp
+}
+
+/// Middleware giving a request body `--body-timeout` to arrive, counted from when its headers
+/// were read. Past it, reading the body fails and the request is answered 408 (whatever the
+/// handler made of the failed read), and the connection is closed.
+pub async fn body_deadline(State(state): State<AppState>, req: Request, next: Next) -> Response {
+    let limit = state.config().body_timeout();
+    if limit.is_zero() || !has_body(&req) {
+        return next.run(req).await;
+    }
+    let expired = Arc::new(AtomicBool::new(false));
+    let req = req.map(|body| {
+        Body::new(Deadline {
+            inner: body,
+            sleep: Box::pin(tokio::time::sleep(limit)),
+            expired: expired.clone(),
+        })
+    });
+    let resp = next.run(req).await;
+    if !expired.load(Ordering::Acquire) {
+        return resp;
+    }
+    body_timeout(limit)
+}
+
+fn body_timeout(limit: Duration) -> Response {
+    let mut resp = problem_response(
+        StatusCode::REQUEST_TIMEOUT,
+        "body-timeout",
+        "request body too slow",
+        format!(
+            "the request body did not arrive within this service's limit of {} s after its headers: send the whole body at once, or post a large raster to /rasters once and refer to it",
+            limit.as_secs_f64()
+        ),
+    );
+    // RFC 9110, 15.5.9: the server closes the connection after a 408.
+    resp.headers_mut()
+        .insert(header::CONNECTION, HeaderValue::from_static("close"));
+    resp
+}
+
+/// The request body passed through until its deadline, then an error.
+struct Deadline {
+    inner: Body,
+    sleep: Pin<Box<tokio::time::Sleep>>,
+    expired: Arc<AtomicBool>,
+}
+
+#[derive(Debug, thiserror::Error)]
+#[error("the request body did not arrive in time")]
+struct BodyTimedOut;
+
+impl HttpBody for Deadline {
+    type Data = Bytes;
+    type Error = axum::Error;
+
+    fn poll_frame(
+        mut self: Pin<&mut Self>,
+        cx: &mut Context<'_>,
+    ) -> Poll<Option<Result<Frame<Bytes>, axum::Error>>> {
+        if let Poll::Ready(frame) = Pin::new(&mut self.inner).poll_frame(cx) {
+            return Poll::Ready(frame);
+        }
+        if self.sleep.as_mut().poll(cx).is_ready() {
+            self.expired.store(true, Ordering::Release);
+            return Poll::Ready(Some(Err(axum::Error::new(BodyTimedOut))));
+        }
+        Poll::Pending
+    }
+
+    fn is_end_stream(&self) -> bool {
+        self.inner.is_end_stream()
+    }
+
+    fn size_hint(&self) -> SizeHint {
+        self.inner.size_hint()
+    }
+}
 
 /// Checks that the body is declared as JSON (`application/json` or any `+json` type).
 pub fn require_json(headers: &HeaderMap) -> Result<(), ApiError> {

@@ -65,6 +65,28 @@ pub struct Config {
     /// Seconds suggested in `Retry-After` to pollers and to clients refused by a full queue.
     #[arg(long, env = "ZONETALLY_RETRY_AFTER", default_value_t = 1)]
     pub retry_after: u64,
+    /// Connections served in full at once; beyond it a connection gets health checks only.
+    // 768 stays below the common soft limit of 1,024 descriptors with room for the listener, the
+    // runtime, logs, a job store and the connections beyond the cap (served health checks under
+    // --overflow-timeout); `serve` also raises the soft limit to the hard one, and warns when
+    // the limit leaves less room than that.
+    #[arg(long, env = "ZONETALLY_MAX_CONNECTIONS", default_value_t = 768)]
+    pub max_connections: usize,
+    /// Seconds for a request's headers to arrive, counted from when the connection is ready for
+    /// that request (opened, or the previous response sent); 0: no limit.
+    #[arg(long, env = "ZONETALLY_HEADER_TIMEOUT", default_value_t = 10.0)]
+    pub header_timeout: f64,
+    /// Seconds a connection may stay open with no request in flight and no byte moving; 0:
+    /// close each connection after one response.
+    #[arg(long, env = "ZONETALLY_KEEP_ALIVE_TIMEOUT", default_value_t = 5.0)]
+    pub keep_alive_timeout: f64,
+    /// Seconds for a request body to arrive once its headers have; beyond it the request is
+    /// answered 408 and the connection closed. 0: no limit.
+    #[arg(long, env = "ZONETALLY_BODY_TIMEOUT", default_value_t = 60.0)]
+    pub body_timeout: f64,
+    /// Seconds a connection beyond --max-connections has to send its one health check.
+    #[arg(long, env = "ZONETALLY_OVERFLOW_TIMEOUT", default_value_t = 1.0)]
+    pub overflow_timeout: f64,
 }
 
 impl Default for Config {
@@ -89,6 +111,11 @@ impl Default for Config {
             log_json: false,
             shutdown_grace: 10.0,
             retry_after: 1,
+            max_connections: 768,
+            header_timeout: 10.0,
+            keep_alive_timeout: 5.0,
+            body_timeout: 60.0,
+            overflow_timeout: 1.0,
         }
     }
 }
@@ -110,6 +137,18 @@ impl Config {
     }
     pub fn shutdown_grace(&self) -> Duration {
         secs(self.shutdown_grace)
+    }
+    pub fn header_timeout(&self) -> Duration {
+        secs(self.header_timeout)
+    }
+    pub fn keep_alive_timeout(&self) -> Duration {
+        secs(self.keep_alive_timeout)
+    }
+    pub fn body_timeout(&self) -> Duration {
+        secs(self.body_timeout)
+    }
+    pub fn overflow_timeout(&self) -> Duration {
+        secs(self.overflow_timeout)
     }
 }
 

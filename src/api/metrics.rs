@@ -45,7 +45,21 @@ pub struct Metrics {
 }
 
 impl Metrics {
+    /// Counts one response. Labels come from fixed sets only, so clients cannot grow the
+    /// exposition: methods other than the standard ones become `other`, and so do statuses
+    /// outside 100..=599 (routes are templates or `other`, see `record`).
     pub fn observe(&self, route: &str, method: &str, status: u16, seconds: f64) {
+        const METHODS: [&str; 7] = ["GET", "POST", "DELETE", "PUT", "PATCH", "HEAD", "OPTIONS"];
+        let method = METHODS
+            .iter()
+            .find(|m| **m == method)
+            .copied()
+            .unwrap_or("other");
+        let status = if (100..=599).contains(&status) {
+            status
+        } else {
+            0
+        };
         let mut map = self.requests.lock().unwrap_or_else(|p| p.into_inner());
         let s = map
             .entry((route.to_string(), method.to_string(), status))
@@ -186,20 +200,28 @@ impl Metrics {
     }
 }
 
-/// Middleware recording every response under its route template (never the raw path, so ids
-/// do not explode the label set).
+/// Middleware recording every response under its route template, never the raw path (so ids
+/// and invented paths do not grow the label set): requests that matched no route are counted
+/// under `other`. Runs outside the router's routing, so the template comes back on the
+/// response (`router` copies it there); a `MatchedPath` on the request is used when present.
 pub async fn record(State(metrics): State<Arc<Metrics>>, req: Request, next: Next) -> Response {
-    let route = req
+    let matched = req
         .extensions()
         .get::<MatchedPath>()
-        .map(|m| m.as_str().to_string())
-        .unwrap_or_else(|| "unmatched".into());
-    let method = req.method().as_str().to_string();
+        .map(|m| m.as_str().to_string());
+    let method = req.method().clone();
     let start = std::time::Instant::now();
     let resp = next.run(req).await;
+    let route = matched
+        .or_else(|| {
+            resp.extensions()
+                .get::<MatchedPath>()
+                .map(|m| m.as_str().to_string())
+        })
+        .unwrap_or_else(|| "other".into());
     metrics.observe(
         &route,
-        &method,
+        method.as_str(),
         resp.status().as_u16(),
         start.elapsed().as_secs_f64(),
     );

@@ -25,7 +25,7 @@ pub mod wire;
 use std::sync::OnceLock;
 use std::time::Duration;
 
-use axum::extract::{DefaultBodyLimit, Request, State};
+use axum::extract::{DefaultBodyLimit, MatchedPath, Request, State};
 use axum::http::{HeaderName, HeaderValue, Method, Uri};
 use axum::middleware::{self, Next};
 use axum::response::{IntoResponse, Response};
@@ -117,7 +117,8 @@ async fn time_limit(State(state): State<AppState>, req: Request, next: Next) -> 
 }
 
 /// The whole service as a router: routes, problem-shaped fallbacks, and the middleware stack
-/// (request ids, tracing, CORS, gzip, metrics, time limit, body limit).
+/// (request ids, tracing, CORS, gzip, metrics, time limit, content coding, body deadline, body
+/// limit).
 pub fn router(state: AppState) -> Router {
     let (router, _) = routes().split_for_parts();
     let config = state.config().clone();
@@ -125,8 +126,22 @@ pub fn router(state: AppState) -> Router {
     let mut app = router
         .fallback(not_found)
         .method_not_allowed_fallback(method_not_allowed)
-        .route_layer(middleware::from_fn_with_state(state.clone(), time_limit))
         .route_layer(middleware::from_fn_with_state(
+            state.clone(),
+            body::body_deadline,
+        ))
+        .route_layer(middleware::from_fn(body::refuse_encoded))
+        .route_layer(middleware::from_fn_with_state(state.clone(), time_limit))
+        // Hands the route template to `metrics::record`, which runs outside the routing.
+        .route_layer(middleware::from_fn(|req: Request, next: Next| async move {
+            let matched = req.extensions().get::<MatchedPath>().cloned();
+            let mut resp = next.run(req).await;
+            if let Some(m) = matched {
+                resp.extensions_mut().insert(m);
+            }
+            resp
+        }))
+        .layer(middleware::from_fn_with_state(
             state.metrics().clone(),
             metrics::record,
         ))

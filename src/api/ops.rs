@@ -42,6 +42,12 @@ pub async fn readyz(State(state): State<AppState>) -> Result<Json<Readiness>, Ap
     if state.is_shutting_down() || !state.jobs().store_ready() || pool.threads == 0 {
         return Err(ApiError::ShuttingDown);
     }
+    // A full queue refuses every execution: not ready until a slot frees (it does by itself).
+    if pool.queued + pool.running >= pool.capacity {
+        return Err(ApiError::Busy {
+            retry_after: state.config().retry_after,
+        });
+    }
     Ok(Json(Readiness {
         status: "ready".into(),
         compute_threads: pool.threads,
