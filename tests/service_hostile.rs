@@ -341,7 +341,10 @@ async fn compressed_bodies_are_refused_with_415() {
         assert_eq!(v["type"], "/problems/unsupported-content-encoding");
         let detail = v["detail"].as_str().unwrap();
         let named = coding.rsplit(", ").next().unwrap();
-        assert!(detail.contains(&format!("`{named}`")), "{detail}");
+        assert!(
+            detail.contains(&format!("`Content-Encoding: {named}`")),
+            "{detail}"
+        );
         assert!(detail.contains("uncompressed"), "{detail}");
     }
     // `identity` is no encoding at all.

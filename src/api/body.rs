@@ -68,7 +68,7 @@ pub async fn refuse_encoded(req: Request, next: Next) -> Response {
     }
     let named = foreign
         .iter()
-        .map(|c| format!("`{c}`"))
+        .map(|c| c.as_str())
         .collect::<Vec<_>>()
         .join(", ");
     let mut resp = problem_response(
