@@ -1,5 +1,7 @@
 #!/usr/bin/env python3
-"""Writes demo/valley.json: an invented valley after a storm, as a zonetally request document.
+"""Writes the demo files: an invented valley after a storm, as a zonetally request document
+(demo/valley.json) and as the files an analyst would hold: a GeoTIFF of the raster
+(demo/valley.tif) and GeoJSON polygons of the zones (demo/valley-zones.geojson).
 
 Everything here is made up: the valley, its terrain, its hamlets and roads, and the count of
 landslides. The raster is 120 columns x 80 rows of per-cell landslide probabilities (row 0 at
@@ -10,8 +12,15 @@ the steep sides high, the ridge tops moderate. A lake on the floor and the north
 The script is deterministic (a fixed seed, stdlib only), so running it again reproduces the
 committed file byte for byte:
 
-    python3 demo/make_valley.py            # writes demo/valley.json beside this script
-    python3 demo/make_valley.py --check    # exits 1 if the committed file differs
+    python3 demo/make_valley.py            # writes the three files beside this script
+    python3 demo/make_valley.py --check    # exits 1 if a committed file differs
+
+The GeoTIFF and GeoJSON place the valley on invented coordinates in a projected CRS (EPSG:32631,
+metres; no real place lies under them): 25 m cells, the top-left corner at (512000, 5204000).
+The GeoTIFF is float32, one uncompressed strip, nodata -9999, written here with the standard
+library only. The GeoJSON zones trace the same cells as valley.json's zones along cell edges,
+except `lakeside-cabins`, drawn as a 32-sided ellipse around the lake: the lake's nodata cells
+inside it are dropped by the service and counted in the zone's `nodata_cells`.
 """
 
 import argparse
@@ -19,6 +28,7 @@ import json
 import math
 import os
 import random
+import struct
 import sys
 
 WIDTH, HEIGHT = 120, 80
@@ -173,17 +183,173 @@ def encode(doc):
     return "\n".join(lines) + "\n"
 
 
+# Where the invented valley lies: EPSG code, top-left corner and cell size in metres.
+EPSG = 32631
+ORIGIN_X, ORIGIN_Y = 512000.0, 5204000.0
+CELL = 25.0
+NODATA = -9999.0
+
+
+def geotiff(values):
+    """A little-endian float32 GeoTIFF, one strip, with pixel scale, tiepoint, GeoKeys and the
+    GDAL nodata tag (TIFF 6.0 and GeoTIFF 1.1; tags in ascending order)."""
+    pixels = b"".join(struct.pack("<f", NODATA if v is None else v) for v in values)
+    nodata_text = b"-9999\0"
+    geokeys = [1, 1, 0, 3, 1024, 0, 1, 1, 1025, 0, 1, 1, 3072, 0, 1, EPSG]
+    extra = [
+        ("scale", struct.pack("<3d", CELL, CELL, 0.0)),
+        ("tie", struct.pack("<6d", 0.0, 0.0, 0.0, ORIGIN_X, ORIGIN_Y, 0.0)),
+        ("keys", struct.pack(f"<{len(geokeys)}H", *geokeys)),
+        ("nodata", nodata_text),
+    ]
+    entries = 14
+    ifd_at = 8
+    data_at = ifd_at + 2 + entries * 12 + 4
+    offsets = {}
+    blob = b""
+    for name, data in extra:
+        offsets[name] = data_at + len(blob)
+        blob += data + (b"\0" if len(data) % 2 else b"")
+    strip_at = data_at + len(blob)
+    SHORT, LONG, DOUBLE, ASCII = 3, 4, 12, 2
+
+    def entry(tag, kind, count, value):
+        if kind == SHORT and count == 1:
+            return struct.pack("<HHIHH", tag, kind, count, value, 0)
+        return struct.pack("<HHII", tag, kind, count, value)
+
+    ifd = [
+        entry(256, SHORT, 1, WIDTH),
+        entry(257, SHORT, 1, HEIGHT),
+        entry(258, SHORT, 1, 32),
+        entry(259, SHORT, 1, 1),
+        entry(262, SHORT, 1, 1),
+        entry(273, LONG, 1, strip_at),
+        entry(277, SHORT, 1, 1),
+        entry(278, SHORT, 1, HEIGHT),
+        entry(279, LONG, 1, len(pixels)),
+        entry(339, SHORT, 1, 3),
+        entry(33550, DOUBLE, 3, offsets["scale"]),
+        entry(33922, DOUBLE, 6, offsets["tie"]),
+        entry(34735, SHORT, len(geokeys), offsets["keys"]),
+        entry(42113, ASCII, len(nodata_text), offsets["nodata"]),
+    ]
+    assert len(ifd) == entries
+    head = b"II" + struct.pack("<HI", 42, ifd_at)
+    return head + struct.pack("<H", entries) + b"".join(ifd) + struct.pack("<I", 0) + blob + pixels
+
+
+def world(col, row):
+    return [ORIGIN_X + col * CELL, ORIGIN_Y - row * CELL]
+
+
+def band_ring(rows, left, right):
+    """The outline along cell edges of the cells `left(r) <= c < right(r)` for r in `rows`,
+    counter-clockwise in map coordinates (RFC 7946)."""
+    rows = list(rows)
+    down = []
+    for r in rows:
+        down += [world(left(r), r), world(left(r), r + 1)]
+    up = []
+    for r in reversed(rows):
+        up += [world(right(r), r + 1), world(right(r), r)]
+    ring = down + up
+    ring.append(ring[0])
+    # Drop repeated points (neighbouring rows with the same edge column).
+    out = [ring[0]]
+    for p in ring[1:]:
+        if p != out[-1]:
+            out.append(p)
+    return out
+
+
+def geo_zones(values):
+    """valley.json's zones as polygons on the map: the same cells, traced along cell edges."""
+    features = []
+    for z in zones(values):
+        zid = z["id"]
+        if "rect" in z:
+            r = z["rect"]
+            ring = [world(r["col"], r["row"] + r["rows"]), world(r["col"] + r["cols"], r["row"] + r["rows"]),
+                    world(r["col"] + r["cols"], r["row"]), world(r["col"], r["row"])]
+            ring.append(ring[0])
+        elif zid == "lakeside-cabins":
+            cr, cc = 58.5, river_col(58) + 2.5
+            ring = [world(cc + 12.0 * math.cos(2 * math.pi * i / 32), cr - 8.0 * math.sin(2 * math.pi * i / 32))
+                    for i in range(32)]
+            ring = [[round(x, 3), round(y, 3)] for x, y in ring]
+            ring.append(ring[0])
+        else:
+            ring = band_ring(*BANDS[zid])
+        features.append({"type": "Feature", "id": zid, "properties": {"name": zid}, "geometry": {"type": "Polygon", "coordinates": [ring]}})
+    return {"type": "FeatureCollection", "features": features}
+
+
+def _band(r0, r1, a, b):
+    """Rows r0..r1, columns from int(rc(r)) + a (ceil of the float bound) to before rc(r) + b,
+    as valley.json's `cells_where` selects them."""
+    def lo(r):
+        return math.ceil(river_col(r) + a)
+
+    def hi(r):
+        return math.ceil(river_col(r) + b)
+    return (range(r0, r1), lo, hi)
+
+
+BANDS = {
+    "quarry-slope": _band(44, 56, -30, -14),
+    "mill-hamlet": _band(6, 16, -8, -1),
+    "north-road": _band(0, 30, 3, 6),
+    "school-lane": _band(20, 28, -8, -1),
+    "footbridge-crossing": _band(34, 40, -6, 6),
+    "river-flats": _band(40, 50, -7, 7),
+    "south-bridge": _band(70, 78, -5, 5),
+    "chapel-spur": _band(12, 24, 14, 28),
+    "high-meadow": _band(50, 62, 24, 40),
+    "sawpit-gully": _band(66, 78, 12, 24),
+}
+
+
+def encode_geojson(doc):
+    """One feature per line, so diffs stay readable."""
+    lines = ['{"type":"FeatureCollection","features":[']
+    lines.append(",\n".join(json.dumps(f, separators=(",", ":")) for f in doc["features"]))
+    lines.append("]}")
+    return "\n".join(lines) + "\n"
+
+
 def main():
+    here = os.path.dirname(os.path.abspath(__file__))
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--out", default=os.path.join(os.path.dirname(os.path.abspath(__file__)), "valley.json"))
-    ap.add_argument("--check", action="store_true", help="compare with --out instead of writing it")
+    ap.add_argument("--out", default=os.path.join(here, "valley.json"))
+    ap.add_argument("--tif", default=os.path.join(here, "valley.tif"))
+    ap.add_argument("--geojson", default=os.path.join(here, "valley-zones.geojson"))
+    ap.add_argument("--check", action="store_true", help="compare with the files instead of writing them")
     args = ap.parse_args()
-    text = encode(build())
+    doc = build()
+    text = encode(doc)
+    files = [
+        (args.out, text.encode("utf-8")),
+        (args.tif, geotiff(doc["raster"]["values"])),
+        (args.geojson, encode_geojson(geo_zones(doc["raster"]["values"])).encode("utf-8")),
+    ]
     if args.check:
-        with open(args.out, encoding="utf-8") as f:
-            same = f.read() == text
-        print("valley.json is up to date" if same else "valley.json differs from make_valley.py's output")
-        return 0 if same else 1
+        stale = []
+        for path, data in files:
+            try:
+                with open(path, "rb") as f:
+                    if f.read() != data:
+                        stale.append(path)
+            except OSError:
+                stale.append(path)
+        for path in stale:
+            print(f"{os.path.basename(path)} differs from make_valley.py's output")
+        if not stale:
+            print("valley.json, valley.tif and valley-zones.geojson are up to date")
+        return 1 if stale else 0
+    for path, data in files[1:]:
+        with open(path, "wb") as f:
+            f.write(data)
     with open(args.out, "w", encoding="utf-8") as f:
         f.write(text)
     valid = [v for v in build()["raster"]["values"] if v is not None]

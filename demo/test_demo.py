@@ -94,7 +94,8 @@ class Generator(unittest.TestCase):
             texts = []
             for name in ("a.json", "b.json"):
                 out = os.path.join(d, name)
-                subprocess.run([sys.executable, os.path.join(DEMO, "make_valley.py"), "--out", out], check=True, capture_output=True)
+                subprocess.run([sys.executable, os.path.join(DEMO, "make_valley.py"), "--out", out,
+                                "--tif", out + ".tif", "--geojson", out + ".geojson"], check=True, capture_output=True)
                 with open(out, encoding="utf-8") as f:
                     texts.append(f.read())
             self.assertEqual(texts[0], texts[1])

@@ -15,11 +15,9 @@ struct Cli {
 
 #[derive(Subcommand)]
 enum Command {
-    /// Evaluate a request document (a file, or - for standard input) and print the results.
-    Eval {
-        /// Path of the request document, or - for standard input.
-        request: String,
-    },
+    /// Evaluate a request document (a file, or - for standard input), or a raster, zones and
+    /// total given as files and flags, and print the results.
+    Eval(zonetally::cli::EvalArgs),
     /// Run the HTTP service (OGC API - Processes). Every flag is also a ZONETALLY_* variable.
     Serve(Box<zonetally::Config>),
     /// Print the service's OpenAPI document (what `openapi/openapi.json` must hold).
@@ -41,13 +39,22 @@ enum Command {
 fn main() {
     let cli = Cli::parse();
     match cli.command {
-        Command::Eval { request } => match zonetally::cli::eval(&request) {
-            Ok(doc) => println!("{doc}"),
-            Err(e) => {
+        Command::Eval(args) => {
+            let written = zonetally::cli::eval(&args).and_then(|bytes| {
+                let result = match &args.out {
+                    Some(path) => std::fs::write(path, &bytes),
+                    None => std::io::Write::write_all(&mut std::io::stdout(), &bytes),
+                };
+                result.map_err(|e| zonetally::cli::CliError {
+                    message: format!("cannot write the results: {e}"),
+                    code: 1,
+                })
+            });
+            if let Err(e) = written {
                 eprintln!("zonetally: {}", e.message);
                 std::process::exit(e.code);
             }
-        },
+        }
         Command::Openapi => print!("{}", zonetally::api::openapi_json()),
         Command::Serve(config) => {
             init_tracing(config.log_json);

@@ -22,7 +22,7 @@ use std::time::{Duration, Instant};
 
 use serde_json::{json, Value};
 use service_support::socket::Server;
-use zonetally::api::decode::{self, InlineOnly, Limits};
+use zonetally::api::decode::{self, Limits, LocalFiles};
 use zonetally::api::wire::EvalRequest;
 use zonetally::engine::{self, Control, Normaliser};
 use zonetally::Config;
@@ -64,17 +64,17 @@ async fn json_share() {
     for rep in 0..reps {
         // Engine alone: decode excluded, normaliser + plan + execute, on a rayon pool as in the service.
         let req: EvalRequest = serde_json::from_value(doc.clone()).unwrap();
-        let decoded = decode::zone_counts(req, &Limits::default(), &InlineOnly).unwrap();
+        let decoded = decode::zone_counts(req, &Limits::default(), &LocalFiles).unwrap();
         let pool = rayon::ThreadPoolBuilder::new().build().unwrap();
         let t = Instant::now();
         pool.install(|| {
             let control = Control::new();
             let n = Normaliser::of(&decoded.raster, &decoded.evidence, &control).unwrap();
-            let plan = engine::plan(&decoded.raster, &decoded.zones);
+            let plan = engine::plan(&decoded.raster, decoded.zones.engine_zones());
             engine::execute(
                 &plan,
                 &decoded.raster,
-                &decoded.zones,
+                decoded.zones.engine_zones(),
                 &n,
                 &decoded.settings,
                 &control,

@@ -124,22 +124,6 @@ fn cases() -> Vec<Case> {
             Some("/inputs/zones/1/cells"),
         ),
         case(
-            "empty cell list",
-            with(|b| b["inputs"]["zones"][1]["cells"] = json!([])),
-            400,
-            inv,
-            Some("/inputs/zones/1/cells"),
-        ),
-        case(
-            "zone on a nodata cell",
-            with(|b| {
-                b["inputs"]["raster"]["values"][5] = Value::Null;
-            }),
-            400,
-            inv,
-            Some("/inputs/zones/1/cells/1"),
-        ),
-        case(
             "empty zones list",
             with(|b| b["inputs"]["zones"] = json!([])),
             400,

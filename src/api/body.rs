@@ -162,6 +162,9 @@ impl HttpBody for Deadline {
     }
 }
 
+/// What a JSON-only endpoint asks for in its 415.
+pub const JSON_ONLY: &str = "JSON with `Content-Type: application/json`";
+
 /// Checks that the body is declared as JSON (`application/json` or any `+json` type).
 pub fn require_json(headers: &HeaderMap) -> Result<(), ApiError> {
     let got = headers
@@ -185,6 +188,7 @@ pub fn require_json(headers: &HeaderMap) -> Result<(), ApiError> {
             } else {
                 got.into()
             },
+            accepted: JSON_ONLY,
         })
     }
 }
@@ -265,7 +269,7 @@ fn describe(e: &serde_json::Error) -> String {
 }
 
 /// `inputs.raster.values[3]` as `/inputs/raster/values/3`.
-fn pointer_of(path: &serde_path_to_error::Path) -> String {
+pub(crate) fn pointer_of(path: &serde_path_to_error::Path) -> String {
     use serde_path_to_error::Segment;
     let mut out = String::new();
     for seg in path.iter() {

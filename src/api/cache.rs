@@ -3,16 +3,21 @@
 //! Rasters are keyed by a content hash: SHA-256 over a canonical encoding of the validated
 //! raster (a tag, width and height as little-endian u32, then each cell as the little-endian
 //! bits of its probability, +0.0 for -0.0 and one fixed pattern for nodata). The same grid sent
-//! with `null`s or with a `nodata` value, or by reference, hashes alike. Normalisers are keyed
-//! by (raster hash, observed total).
+//! with `null`s or with a `nodata` value, or by reference, hashes alike. Where the raster lies
+//! (geotransform, CRS) is hashed after the cells when it is known, so a raster without it keeps
+//! the hash it always had. Normalisers are keyed by (raster hash, observed total).
+//!
+//! Rasters linked by `href` are read from the operator's `--data-dir` only: a relative path
+//! that stays inside it once resolved (no `..`, no link leading out); anything else is refused.
 
+use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::Arc;
 
 use moka::sync::Cache;
 use sha2::{Digest, Sha256};
 
-use super::decode::{DecodeError, DecodeKind, RasterSource};
+use super::decode::{read_bounded, DecodeError, DecodeKind, Frame, HeldRaster, RasterSource};
 use super::processes::{NormaliserSource, Uncached};
 use crate::engine::{Control, EngineError, Evidence, Normaliser, Raster};
 
@@ -20,8 +25,8 @@ const HASH_TAG: &[u8] = b"zonetally raster v1\0";
 /// Stands for a nodata cell in the hash (not a probability's bit pattern).
 const NODATA_BITS: u64 = u64::MAX;
 
-/// The content hash of a raster, as `sha256:` and 64 hex digits.
-pub fn raster_hash(raster: &Raster) -> String {
+/// The content hash of a raster and where it lies, as `sha256:` and 64 hex digits.
+pub fn raster_hash(raster: &Raster, frame: &Frame) -> String {
     let mut h = Sha256::new();
     h.update(HASH_TAG);
     h.update(raster.width().to_le_bytes());
@@ -38,6 +43,17 @@ pub fn raster_hash(raster: &Raster) -> String {
             buf.extend_from_slice(&bits.to_le_bytes());
         }
         h.update(&buf);
+    }
+    let grid = &frame.grid;
+    if let Some(t) = grid.transform {
+        h.update(b"geotransform");
+        for term in t.to_gdal() {
+            h.update((term + 0.0).to_bits().to_le_bytes());
+        }
+    }
+    if let Some(crs) = grid.crs {
+        h.update(b"crs");
+        h.update(crs.to_le_bytes());
     }
     let digest = h.finalize();
     let mut out = String::with_capacity(7 + 64);
@@ -66,12 +82,14 @@ pub struct CacheStats {
 }
 
 pub struct Caches {
-    rasters: Cache<String, Arc<Raster>>,
+    rasters: Cache<String, HeldRaster>,
     normalisers: Cache<(String, u64), Arc<Normaliser>>,
     raster_hits: AtomicU64,
     raster_misses: AtomicU64,
     normaliser_hits: AtomicU64,
     normaliser_misses: AtomicU64,
+    /// The directory `href` links may name files in (`--data-dir`); none: links refused.
+    data_dir: Option<PathBuf>,
 }
 
 fn weight(bytes: usize) -> u32 {
@@ -83,7 +101,7 @@ impl Caches {
         Caches {
             rasters: Cache::builder()
                 .max_capacity(raster_bytes)
-                .weigher(|k: &String, r: &Arc<Raster>| weight(r.heap_bytes() + k.len()))
+                .weigher(|k: &String, r: &HeldRaster| weight(r.raster.heap_bytes() + k.len()))
                 .build(),
             normalisers: Cache::builder()
                 .max_capacity(normaliser_bytes)
@@ -93,11 +111,18 @@ impl Caches {
             raster_misses: AtomicU64::new(0),
             normaliser_hits: AtomicU64::new(0),
             normaliser_misses: AtomicU64::new(0),
+            data_dir: None,
         }
     }
 
+    /// Lets `href` links name files under `dir` (the operator's `--data-dir`).
+    pub fn with_data_dir(mut self, dir: Option<PathBuf>) -> Caches {
+        self.data_dir = dir;
+        self
+    }
+
     /// A raster by hash, counting the hit or miss.
-    pub fn raster(&self, hash: &str) -> Option<Arc<Raster>> {
+    pub fn raster(&self, hash: &str) -> Option<HeldRaster> {
         let got = self.rasters.get(hash);
         let counter = if got.is_some() {
             &self.raster_hits
@@ -110,12 +135,15 @@ impl Caches {
 
     /// Keeps `raster` under its hash and returns the copy held (an equal raster already held
     /// is reused, so its memory is not doubled).
-    pub fn keep_raster(&self, raster: Raster) -> (String, Arc<Raster>) {
-        let hash = raster_hash(&raster);
+    pub fn keep_raster(&self, raster: Raster, frame: Frame) -> (String, HeldRaster) {
+        let hash = raster_hash(&raster, &frame);
         if let Some(held) = self.raster(&hash) {
             return (hash, held);
         }
-        let held = Arc::new(raster);
+        let held = HeldRaster {
+            raster: Arc::new(raster),
+            frame,
+        };
         self.rasters.insert(hash.clone(), held.clone());
         (hash, held)
     }
@@ -161,7 +189,7 @@ impl Caches {
 }
 
 impl RasterSource for Caches {
-    fn resolve(&self, reference: &str) -> Result<(String, Arc<Raster>), DecodeError> {
+    fn resolve(&self, reference: &str) -> Result<(String, HeldRaster), DecodeError> {
         if !is_hash(reference) {
             return Err(DecodeError::at(
                 "/raster/ref",
@@ -178,9 +206,25 @@ impl RasterSource for Caches {
         Ok((reference.to_string(), held))
     }
 
-    fn keep(&self, raster: Raster) -> (Option<String>, Arc<Raster>) {
-        let (hash, held) = self.keep_raster(raster);
+    fn keep(&self, raster: Raster, frame: Frame) -> (Option<String>, HeldRaster) {
+        let (hash, held) = self.keep_raster(raster, frame);
         (Some(hash), held)
+    }
+
+    fn read_file(&self, href: &str, max_bytes: u64) -> Result<Vec<u8>, DecodeError> {
+        let Some(dir) = &self.data_dir else {
+            return Err(DecodeError::at(
+                "/raster/href",
+                format!("`{href}` links to a file, but this service reads no files (its operator set no --data-dir): post the raster to /rasters and send its `ref`, or send it inline"),
+            ));
+        };
+        let path = inside(dir, href).ok_or_else(|| {
+            DecodeError::at(
+                "/raster/href",
+                format!("`{href}` is not a file under this service's data directory: give a relative path such as `rasters/valley.tif`, without `..`; nothing is fetched from the network"),
+            )
+        })?;
+        read_bounded(&path, href, max_bytes)
     }
 }
 
@@ -199,24 +243,37 @@ impl NormaliserSource for Caches {
     }
 }
 
+/// The file `href` names under `dir`, when it is a relative path that resolves inside `dir`.
+fn inside(dir: &Path, href: &str) -> Option<PathBuf> {
+    use std::path::Component;
+    let relative = Path::new(href);
+    if href.contains("://")
+        || !relative
+            .components()
+            .all(|c| matches!(c, Component::Normal(_) | Component::CurDir))
+    {
+        return None;
+    }
+    let root = dir.canonicalize().ok()?;
+    let path = root.join(relative).canonicalize().ok()?;
+    path.starts_with(&root).then_some(path)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
 
     #[test]
     fn nodata_spellings_and_signed_zero_hash_alike() {
+        let plain = |r: &Raster| raster_hash(r, &Frame::plain(r.width(), r.height()));
         let a = Raster::new(2, 1, vec![Some(0.0), None]).unwrap();
         let b = Raster::new(2, 1, vec![Some(-0.0), None]).unwrap();
         let c = Raster::new(2, 1, vec![Some(0.0), Some(0.5)]).unwrap();
         let d = Raster::new(1, 2, vec![Some(0.0), None]).unwrap();
-        assert_eq!(raster_hash(&a), raster_hash(&b));
-        assert_ne!(raster_hash(&a), raster_hash(&c));
-        assert_ne!(
-            raster_hash(&a),
-            raster_hash(&d),
-            "the shape is part of the hash"
-        );
-        assert!(is_hash(&raster_hash(&a)));
+        assert_eq!(plain(&a), plain(&b));
+        assert_ne!(plain(&a), plain(&c));
+        assert_ne!(plain(&a), plain(&d), "the shape is part of the hash");
+        assert!(is_hash(&plain(&a)));
         assert!(!is_hash("sha256:XYZ"));
     }
 }

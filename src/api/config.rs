@@ -41,6 +41,13 @@ pub struct Config {
     /// Most cells over all zones of one request (counted with multiplicity).
     #[arg(long, env = "ZONETALLY_MAX_ZONE_CELLS", default_value_t = 100_000_000)]
     pub max_zone_cells: u64,
+    /// Most polygon vertices over all GeoJSON zones of one request.
+    #[arg(long, env = "ZONETALLY_MAX_VERTICES", default_value_t = 4_000_000)]
+    pub max_vertices: u64,
+    /// Folder whose GeoTIFF files requests may name as `{"href": "file.tif"}` (relative paths
+    /// only, never outside it); none by default, which refuses every `href`.
+    #[arg(long, env = "ZONETALLY_DATA_DIR")]
+    pub data_dir: Option<std::path::PathBuf>,
     /// Largest planned cost (the planner's multiply-adds) of any request.
     #[arg(long, env = "ZONETALLY_MAX_COST", default_value_t = 1e13)]
     pub max_cost: f64,
@@ -103,6 +110,8 @@ impl Default for Config {
             max_cells: 25_000_000,
             max_zones: 200_000,
             max_zone_cells: 100_000_000,
+            max_vertices: 4_000_000,
+            data_dir: None,
             max_cost: 1e13,
             sync_budget: 2e10,
             request_timeout: 120.0,
@@ -127,6 +136,7 @@ impl Config {
             max_zones: self.max_zones,
             max_zone_cells: self.max_zone_cells,
             max_cost: self.max_cost,
+            max_vertices: self.max_vertices,
         }
     }
     pub fn job_ttl(&self) -> Duration {

@@ -9,15 +9,20 @@
 
 use std::sync::Arc;
 
+use base64::Engine as _;
+use serde_json::value::RawValue;
+
 use crate::engine::{
     CellSelection, EngineError, Evidence, Missing, Raster, RasterProblem, SettingProblem, Settings,
     Zone, ZoneProblem, ZoneSet, DEFAULT_LEVEL, DEFAULT_TOLERANCE,
 };
 use crate::geo::rect::{rect_cells, RectProblem};
+use crate::geo::zones::{parse_zones, rasterize, zones_from_labels, Polygon, ZoneOptions};
+use crate::geo::{geotiff, GeoError, GeoTransform, Grid};
 
 use super::wire::{
-    EvalRequest, EvidenceSpec, PosteriorInputs, RasterInput, RasterSpec, RectSpec, SummariesSpec,
-    ZoneSpec,
+    EvalRequest, EvidenceSpec, LabelZones, PosteriorInputs, RasterFile, RasterInput, RasterSpec,
+    RectSpec, SampleType, SummariesSpec, ZoneOptions as ZoneOptionsSpec, ZoneSpec,
 };
 
 /// Size limits checked while decoding and planning, before the large allocations.
@@ -28,6 +33,16 @@ pub struct Limits {
     pub max_zone_cells: u64,
     /// Largest planned cost (the planner's multiply-adds).
     pub max_cost: f64,
+    /// Most polygon positions over all GeoJSON zones of a request.
+    pub max_vertices: u64,
+}
+
+impl Limits {
+    /// Largest raster file (GeoTIFF) accepted: a float64 raster of `max_cells` uncompressed,
+    /// plus room for headers and tile padding. Follows the cell limit, not the JSON body limit.
+    pub fn max_raster_file_bytes(&self) -> u64 {
+        self.max_cells.saturating_mul(8).saturating_add(16 << 20)
+    }
 }
 
 impl Default for Limits {
@@ -38,6 +53,7 @@ impl Default for Limits {
             max_zones: 1_000_000,
             max_zone_cells: 400_000_000,
             max_cost: f64::INFINITY,
+            max_vertices: 100_000_000,
         }
     }
 }
@@ -47,6 +63,9 @@ impl Default for Limits {
 pub enum DecodeKind {
     /// The content is wrong.
     Invalid,
+    /// A file or geometry was read but cannot be used as given (a rotated grid, a point zone,
+    /// an unclosed ring, a probability outside [0, 1] in a GeoTIFF).
+    Unusable,
     /// A size limit, not the content, was the problem.
     TooLarge,
     /// A raster reference names nothing held.
@@ -75,6 +94,13 @@ impl DecodeError {
             kind: DecodeKind::Invalid,
         }
     }
+    pub fn unusable(pointer: impl Into<String>, detail: impl Into<String>) -> DecodeError {
+        DecodeError {
+            pointer: pointer.into(),
+            detail: detail.into(),
+            kind: DecodeKind::Unusable,
+        }
+    }
     pub fn limit(pointer: impl Into<String>, detail: impl Into<String>) -> DecodeError {
         DecodeError {
             pointer: pointer.into(),
@@ -84,28 +110,135 @@ impl DecodeError {
     }
 }
 
-/// Where rasters come from and go: references resolved, inline rasters kept.
-pub trait RasterSource: Sync {
-    /// The raster held under `reference` and its key. Errors point at `/raster/ref`.
-    fn resolve(&self, reference: &str) -> Result<(String, Arc<Raster>), DecodeError>;
-    /// Keeps an inline raster; returns its key (when this source keys rasters) and the copy held.
-    fn keep(&self, raster: Raster) -> (Option<String>, Arc<Raster>);
+/// Where a raster lies and how its nodata was spelled: carried from input to every output.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Frame {
+    pub grid: Grid,
+    pub nodata: Option<f64>,
 }
 
-/// The command line's source: rasters are inline, references cannot be resolved.
-pub struct InlineOnly;
+impl Frame {
+    /// A frame with no georeferencing.
+    pub fn plain(width: u32, height: u32) -> Frame {
+        Frame {
+            grid: Grid {
+                width,
+                height,
+                transform: None,
+                crs: None,
+            },
+            nodata: None,
+        }
+    }
+}
 
-impl RasterSource for InlineOnly {
-    fn resolve(&self, reference: &str) -> Result<(String, Arc<Raster>), DecodeError> {
+/// A validated raster and its frame, as sources hold them.
+#[derive(Clone, Debug)]
+pub struct HeldRaster {
+    pub raster: Arc<Raster>,
+    pub frame: Frame,
+}
+
+/// Where rasters come from and go: references resolved, inline rasters kept, linked files read.
+pub trait RasterSource: Sync {
+    /// The raster held under `reference` and its key. Errors point at `/raster/ref`.
+    fn resolve(&self, reference: &str) -> Result<(String, HeldRaster), DecodeError>;
+    /// Keeps a decoded raster; returns its key (when this source keys rasters) and the copy held.
+    fn keep(&self, raster: Raster, frame: Frame) -> (Option<String>, HeldRaster);
+    /// The bytes of the file `href` names, at most `max_bytes`. Errors point at `/raster/href`.
+    fn read_file(&self, href: &str, max_bytes: u64) -> Result<Vec<u8>, DecodeError>;
+}
+
+/// The command line's source: references cannot be resolved; `href` files are read from the
+/// local disk (the user runs on their own machine).
+pub struct LocalFiles;
+
+impl RasterSource for LocalFiles {
+    fn resolve(&self, reference: &str) -> Result<(String, HeldRaster), DecodeError> {
         Err(DecodeError::at(
             "/raster/ref",
             format!(
-                "raster `{reference}` is a reference, which only the service (`zonetally serve`, POST /rasters) can resolve: put the raster inline (`width`, `height`, `values`)"
+                "raster `{reference}` is a reference, which only the service (`zonetally serve`, POST /rasters) can resolve: put the raster inline or give its file as `href`"
             ),
         ))
     }
-    fn keep(&self, raster: Raster) -> (Option<String>, Arc<Raster>) {
-        (None, Arc::new(raster))
+    fn keep(&self, raster: Raster, frame: Frame) -> (Option<String>, HeldRaster) {
+        (
+            None,
+            HeldRaster {
+                raster: Arc::new(raster),
+                frame,
+            },
+        )
+    }
+    fn read_file(&self, href: &str, max_bytes: u64) -> Result<Vec<u8>, DecodeError> {
+        read_bounded(std::path::Path::new(href), href, max_bytes)
+    }
+}
+
+/// Reads the file at `path` (named `href` in messages), checking its size before reading.
+pub fn read_bounded(
+    path: &std::path::Path,
+    href: &str,
+    max_bytes: u64,
+) -> Result<Vec<u8>, DecodeError> {
+    use std::io::Read;
+    let file = std::fs::File::open(path)
+        .map_err(|e| DecodeError::at("/raster/href", format!("cannot open `{href}`: {e}")))?;
+    let len = file
+        .metadata()
+        .map_err(|e| DecodeError::at("/raster/href", format!("cannot read `{href}`: {e}")))?
+        .len();
+    if len > max_bytes {
+        return Err(DecodeError::limit(
+            "/raster/href",
+            format!("`{href}` is {len} bytes, above this service's limit of {max_bytes} bytes for a raster file: coarsen or split the raster"),
+        ));
+    }
+    let mut bytes = Vec::with_capacity(len as usize);
+    file.take(max_bytes + 1)
+        .read_to_end(&mut bytes)
+        .map_err(|e| DecodeError::at("/raster/href", format!("cannot read `{href}`: {e}")))?;
+    Ok(bytes)
+}
+
+/// How one requested zone was given and what became of it, in request order.
+#[derive(Clone, Debug, PartialEq)]
+pub struct ZoneEntry {
+    pub id: String,
+    /// Nodata cells of the zone, dropped.
+    pub nodata_cells: u64,
+    /// Its place in the decoded `ZoneSet`; `None` when it has no valid cell.
+    pub slot: Option<usize>,
+    pub shape: ZoneShape,
+}
+
+/// How a zone was given, for outputs that draw it.
+#[derive(Clone, Debug, PartialEq)]
+pub enum ZoneShape {
+    /// A cell list or a label: drawn as the outline of its cells.
+    Cells,
+    Rect(RectSpec),
+    /// GeoJSON polygons, drawn as sent.
+    Polygons(Vec<Polygon>),
+}
+
+/// The zones of a request: the engine's set (zones with at least one valid cell) and the
+/// entries of every zone as requested.
+#[derive(Clone, Debug)]
+pub struct DecodedZones {
+    pub set: Option<ZoneSet>,
+    pub entries: Vec<ZoneEntry>,
+}
+
+impl DecodedZones {
+    /// The zones the engine computes (none when every zone lacks a valid cell).
+    pub fn engine_zones(&self) -> &[Zone] {
+        self.set.as_deref().unwrap_or(&[])
+    }
+    /// Valid cells over all zones, counted with multiplicity.
+    pub fn cell_count(&self) -> u64 {
+        self.set.as_ref().map_or(0, ZoneSet::cell_count)
     }
 }
 
@@ -115,7 +248,8 @@ pub struct Decoded {
     /// The raster's key in its source (its content hash in the service), for caching.
     pub raster_key: Option<String>,
     pub raster: Arc<Raster>,
-    pub zones: ZoneSet,
+    pub frame: Frame,
+    pub zones: DecodedZones,
     pub evidence: Evidence,
     pub settings: Settings,
 }
@@ -125,6 +259,7 @@ pub struct Decoded {
 pub struct DecodedCells {
     pub raster_key: Option<String>,
     pub raster: Arc<Raster>,
+    pub frame: Frame,
     pub cells: CellSelection,
     pub evidence: Evidence,
     pub settings: Settings,
@@ -137,12 +272,14 @@ pub fn zone_counts(
     rasters: &dyn RasterSource,
 ) -> Result<Decoded, DecodeError> {
     let settings = settings(req.summaries)?;
-    let (raster_key, raster) = raster_input(req.raster, limits, rasters)?;
-    let zones = zones(req.zones, &raster, limits)?;
-    let evidence = evidence(req.evidence, &raster)?;
+    let (raster_key, held) = raster_input(req.raster, limits, rasters)?;
+    let options = req.zone_options.unwrap_or_default();
+    let zones = zones(&req.zones, &options, &held, limits, rasters)?;
+    let evidence = evidence(req.evidence, &held.raster)?;
     Ok(Decoded {
         raster_key,
-        raster,
+        raster: held.raster,
+        frame: held.frame,
         zones,
         evidence,
         settings,
@@ -158,7 +295,8 @@ pub fn cell_posterior(
     let tolerance = req.summaries.tolerance.unwrap_or(DEFAULT_TOLERANCE);
     let settings = Settings::new(DEFAULT_LEVEL, Vec::new(), tolerance, false)
         .map_err(|e| DecodeError::at("/summaries/tolerance", e.to_string()))?;
-    let (raster_key, raster) = raster_input(req.raster, limits, rasters)?;
+    let (raster_key, held) = raster_input(req.raster, limits, rasters)?;
+    let raster = held.raster;
     if let Some(cells) = &req.cells {
         if cells.len() as u64 > limits.max_zone_cells {
             return Err(DecodeError::limit(
@@ -183,129 +321,644 @@ pub fn cell_posterior(
     Ok(DecodedCells {
         raster_key,
         raster,
+        frame: held.frame,
         cells,
         evidence,
         settings,
     })
 }
 
-/// The raster of a request: resolved by reference, or decoded and kept.
+/// The raster of a request: resolved by reference or link, or decoded and kept.
 fn raster_input(
     input: RasterInput,
     limits: &Limits,
     rasters: &dyn RasterSource,
-) -> Result<(Option<String>, Arc<Raster>), DecodeError> {
+) -> Result<(Option<String>, HeldRaster), DecodeError> {
     match input {
         RasterInput::Ref(r) => {
-            let (key, raster) = rasters.resolve(&r.reference)?;
-            Ok((Some(key), raster))
+            let (key, held) = rasters.resolve(&r.reference)?;
+            Ok((Some(key), held))
         }
-        RasterInput::Inline(spec) => Ok(rasters.keep(raster(spec, limits)?)),
+        RasterInput::Href(h) => {
+            if let Some(reference) = held_reference(&h.href) {
+                if h.scale.is_some() {
+                    return Err(DecodeError::at(
+                        "/raster/scale",
+                        "a raster held by this service was scaled when it was posted: drop `scale`",
+                    ));
+                }
+                let (key, held) = rasters.resolve(reference).map_err(|mut e| {
+                    e.pointer = "/raster/href".into();
+                    e
+                })?;
+                return Ok((Some(key), held));
+            }
+            let bytes = rasters.read_file(&h.href, limits.max_raster_file_bytes())?;
+            let samples = tiff_samples(&bytes, limits, "/raster/href")?;
+            let (raster, frame) = probabilities(samples, h.scale, "/raster", None)?;
+            Ok(rasters.keep(raster, frame))
+        }
+        RasterInput::File(f) => {
+            let (raster, frame) = raster_file(&f, limits)?;
+            Ok(rasters.keep(raster, frame))
+        }
+        RasterInput::Inline(spec) => {
+            let (raster, frame) = raster(spec, limits)?;
+            Ok(rasters.keep(raster, frame))
+        }
     }
 }
 
-/// Decodes an inline raster; `nodata` values become nodata cells. Pointers start at `/raster`.
-pub fn raster(spec: RasterSpec, limits: &Limits) -> Result<Raster, DecodeError> {
+/// The hash in a link to a raster this service holds: `/rasters/sha256:...`, alone or at the
+/// end of a URL.
+fn held_reference(href: &str) -> Option<&str> {
+    let at = href.rfind("/rasters/")?;
+    let rest = &href[at + "/rasters/".len()..];
+    rest.starts_with("sha256:").then_some(rest)
+}
+
+/// Media types accepted for a GeoTIFF given as a qualified value.
+const TIFF_TYPES: [&str; 2] = ["image/tiff; application=geotiff", "image/tiff"];
+
+/// Whether a media type names a TIFF (parameters other than `application=geotiff` ignored).
+pub fn is_tiff(media_type: &str) -> bool {
+    let essence = media_type.split(';').next().unwrap_or("").trim();
+    essence.eq_ignore_ascii_case("image/tiff")
+}
+
+/// Decodes a GeoTIFF sent as a qualified value (`value`, `mediaType`). Pointers start at `/raster`.
+pub fn raster_file(f: &RasterFile, limits: &Limits) -> Result<(Raster, Frame), DecodeError> {
+    if !is_tiff(&f.media_type) {
+        return Err(DecodeError::at(
+            "/raster/mediaType",
+            format!(
+                "media type `{}` is not offered for a raster value: send `{}` (or JSON values inline)",
+                f.media_type, TIFF_TYPES[0]
+            ),
+        ));
+    }
+    let bytes = base64_bytes(&f.value, limits.max_raster_file_bytes(), "/raster/value")?;
+    let samples = tiff_samples(&bytes, limits, "/raster/value")?;
+    probabilities(samples, f.scale, "/raster", None)
+}
+
+/// Decodes a GeoTIFF's bytes (the body of `POST /rasters`, or a file) into a raster.
+pub fn raster_tiff(
+    bytes: &[u8],
+    scale: Option<f64>,
+    limits: &Limits,
+) -> Result<(Raster, Frame), DecodeError> {
+    let samples = tiff_samples(bytes, limits, "")?;
+    probabilities(samples, scale, "", None)
+}
+
+/// Base64 text decoded, its size checked before decoding.
+fn base64_bytes(text: &str, max_bytes: u64, pointer: &str) -> Result<Vec<u8>, DecodeError> {
+    let decoded_len = (text.len() as u64 / 4) * 3;
+    if decoded_len > max_bytes.saturating_add(3) {
+        return Err(DecodeError::limit(
+            pointer,
+            format!("the base64 value holds about {decoded_len} bytes, above this service's limit of {max_bytes}: post the raster to /rasters as a file"),
+        ));
+    }
+    base64::engine::general_purpose::STANDARD
+        .decode(text.trim())
+        .map_err(|e| {
+            DecodeError::at(
+                pointer,
+                format!("the value is not base64 (RFC 4648, standard alphabet, padded): {e}"),
+            )
+        })
+}
+
+/// Cell values as read, before they are checked: NaN marks nodata.
+struct Samples {
+    frame: Frame,
+    values: Vec<f64>,
+    /// Stored as integers (a scale is then usually needed).
+    integer: bool,
+}
+
+/// The samples of a GeoTIFF; errors point at `pointer`.
+fn tiff_samples(bytes: &[u8], limits: &Limits, pointer: &str) -> Result<Samples, DecodeError> {
+    let read = geotiff::read(
+        bytes,
+        &geotiff::ReadLimits {
+            max_cells: limits.max_cells,
+        },
+    )
+    .map_err(|e| geo_error(e, pointer))?;
+    let nodata = read.nodata;
+    let mut values = read.samples;
+    for v in values.iter_mut() {
+        if Some(*v) == nodata {
+            *v = f64::NAN;
+        }
+    }
+    Ok(Samples {
+        frame: Frame {
+            grid: read.grid,
+            nodata,
+        },
+        values,
+        integer: matches!(
+            read.sample_kind,
+            geotiff::SampleKind::U8 | geotiff::SampleKind::U16
+        ),
+    })
+}
+
+/// A format-layer error at `pointer` (GeoJSON errors add their own pointer below it).
+fn geo_error(e: GeoError, pointer: &str) -> DecodeError {
+    let at = match e.pointer() {
+        Some(p) => format!("{pointer}{p}"),
+        None => pointer.to_string(),
+    };
+    let detail = e.to_string();
+    match e {
+        GeoError::TooManyCells { .. } | GeoError::TooManyVertices { .. } => {
+            DecodeError::limit(at, detail)
+        }
+        _ => DecodeError::unusable(at, detail),
+    }
+}
+
+/// The samples of an inline raster; pointers start at `base`.
+fn inline_samples(spec: RasterSpec, limits: &Limits, base: &str) -> Result<Samples, DecodeError> {
     let cells = spec.width as u64 * spec.height as u64;
     if cells > limits.max_cells {
         return Err(DecodeError::limit(
-            "/raster",
+            base,
             format!(
                 "raster is {}x{} = {cells} cells, above this service's limit of {} cells: split the area or coarsen the raster",
                 spec.width, spec.height, limits.max_cells
             ),
         ));
     }
+    let transform = spec
+        .geotransform
+        .map(GeoTransform::from_gdal)
+        .transpose()
+        .map_err(|e| DecodeError::unusable(format!("{base}/geotransform"), e.to_string()))?;
     let nodata = spec.nodata;
-    let values = spec
-        .values
-        .into_iter()
-        .map(|v| match (v, nodata) {
-            (Some(x), Some(nd)) if x == nd => None,
-            (v, _) => v,
-        })
-        .collect();
-    Raster::new(spec.width, spec.height, values).map_err(|e| {
-        let pointer = match &e {
-            EngineError::InvalidValue { cell, .. } => format!("/raster/values/{cell}"),
-            EngineError::InvalidRaster(RasterProblem::ValueCount { .. }) => "/raster/values".into(),
-            _ => "/raster".into(),
-        };
-        DecodeError::at(pointer, e.to_string())
+    let frame = Frame {
+        grid: Grid {
+            width: spec.width,
+            height: spec.height,
+            transform,
+            crs: spec.crs,
+        },
+        nodata,
+    };
+    let is_nodata = |x: f64| x.is_nan() || Some(x) == nodata;
+    let values = match (spec.values, spec.values_base64) {
+        (Some(_), Some(_)) => {
+            return Err(DecodeError::at(
+                format!("{base}/values_base64"),
+                "the raster gives both `values` and `values_base64`: give one",
+            ))
+        }
+        (Some(values), None) => {
+            if spec.sample_type.is_some() {
+                return Err(DecodeError::at(
+                    format!("{base}/sample_type"),
+                    "`sample_type` describes `values_base64`: drop it, or send the values as base64",
+                ));
+            }
+            if values.len() as u64 != cells {
+                return Err(DecodeError::at(
+                    format!("{base}/values"),
+                    format!(
+                        "the raster has {} values, but {}x{} = {cells} cells: send one value per cell, row-major",
+                        values.len(),
+                        spec.width,
+                        spec.height
+                    ),
+                ));
+            }
+            values
+                .into_iter()
+                .map(|v| v.filter(|&x| !is_nodata(x)).unwrap_or(f64::NAN))
+                .collect()
+        }
+        (None, Some(text)) => {
+            let kind = spec.sample_type.unwrap_or_default();
+            let size: u64 = match kind {
+                SampleType::Float32 => 4,
+                SampleType::Float64 => 8,
+            };
+            let pointer = format!("{base}/values_base64");
+            let bytes = base64_bytes(&text, cells * size, &pointer)?;
+            if bytes.len() as u64 != cells * size {
+                return Err(DecodeError::at(
+                    pointer,
+                    format!(
+                        "`values_base64` holds {} bytes, but {}x{} cells of {kind:?} take {}: send {size} little-endian bytes per cell, row-major",
+                        bytes.len(),
+                        spec.width,
+                        spec.height,
+                        cells * size
+                    ),
+                ));
+            }
+            let decode = |x: f64| if is_nodata(x) { f64::NAN } else { x };
+            match kind {
+                SampleType::Float32 => bytes
+                    .chunks_exact(4)
+                    .map(|b| decode(f64::from(f32::from_le_bytes([b[0], b[1], b[2], b[3]]))))
+                    .collect(),
+                SampleType::Float64 => bytes
+                    .chunks_exact(8)
+                    .map(|b| {
+                        let mut a = [0u8; 8];
+                        a.copy_from_slice(b);
+                        decode(f64::from_le_bytes(a))
+                    })
+                    .collect(),
+            }
+        }
+        (None, None) => {
+            return Err(DecodeError::at(
+                base,
+                "the raster lacks `values`: send `values` or `values_base64`",
+            ))
+        }
+    };
+    Ok(Samples {
+        frame,
+        values,
+        integer: false,
     })
 }
 
-/// Decodes the zones against their raster, checking the counts first.
-fn zones(specs: Vec<ZoneSpec>, raster: &Raster, limits: &Limits) -> Result<ZoneSet, DecodeError> {
-    if specs.len() > limits.max_zones {
-        return Err(DecodeError::limit(
-            "/zones",
+/// Checks samples as probabilities (after `scale`) and builds the raster. `cell_pointer`
+/// names a bad cell's own member when there is one (JSON `values`); otherwise errors point at
+/// `base`.
+fn probabilities(
+    samples: Samples,
+    scale: Option<f64>,
+    base: &str,
+    cell_pointer: Option<&str>,
+) -> Result<(Raster, Frame), DecodeError> {
+    let Samples {
+        frame,
+        mut values,
+        integer,
+    } = samples;
+    if let Some(s) = scale {
+        if !(s.is_finite() && s > 0.0) {
+            return Err(DecodeError::at(
+                format!("{base}/scale"),
+                format!("`scale` is {s}: it must be a finite positive number (0.01 for percent)"),
+            ));
+        }
+        if s != 1.0 {
+            values.iter_mut().for_each(|v| *v *= s);
+        }
+    }
+    let Grid { width, height, .. } = frame.grid;
+    let raster = Raster::from_probabilities(width, height, values).map_err(|e| match e {
+        EngineError::InvalidValue { cell, value } => {
+            let (row, col) = (cell / width.max(1), cell % width.max(1));
+            let hint = if integer && scale.is_none() {
+                ": this raster stores integers, so give `scale` (e.g. 0.01 for percent, 1/255 for bytes)"
+            } else {
+                ": a probability must lie in [0, 1] (use nodata for cells outside the study area)"
+            };
+            let shown = if scale.is_some() { " after scaling" } else { "" };
+            let detail = format!(
+                "the cell at row {row}, column {col} (index {cell}) has value {value}{shown}{hint}"
+            );
+            match cell_pointer {
+                Some(p) => DecodeError::at(format!("{p}/{cell}"), detail),
+                // A file's values: it was read, but cannot be used as probabilities.
+                None => DecodeError::unusable(base, detail),
+            }
+        }
+        EngineError::InvalidRaster(RasterProblem::ValueCount { .. }) => {
+            DecodeError::at(format!("{base}/values"), e.to_string())
+        }
+        other => DecodeError::at(base, other.to_string()),
+    })?;
+    Ok((raster, frame))
+}
+
+/// Decodes an inline raster; `nodata` values become nodata cells. Pointers start at `/raster`.
+pub fn raster(spec: RasterSpec, limits: &Limits) -> Result<(Raster, Frame), DecodeError> {
+    let scale = spec.scale;
+    let per_cell = spec.values.is_some().then_some("/raster/values");
+    let samples = inline_samples(spec, limits, "/raster")?;
+    probabilities(samples, scale, "/raster", per_cell)
+}
+
+/// Parses a JSON member with its own pointer below `base` on failure.
+fn parse_member<T: serde::de::DeserializeOwned>(text: &str, base: &str) -> Result<T, DecodeError> {
+    let mut de = serde_json::Deserializer::from_str(text);
+    serde_path_to_error::deserialize(&mut de).map_err(|e| {
+        let pointer = format!("{base}{}", super::body::pointer_of(e.path()));
+        DecodeError::at(pointer, e.into_inner().to_string())
+    })
+}
+
+/// Which form an object-valued `zones` takes.
+#[derive(serde::Deserialize)]
+struct ZonesPeek {
+    #[serde(rename = "type")]
+    kind: Option<serde::de::IgnoredAny>,
+    labels: Option<serde::de::IgnoredAny>,
+}
+
+/// Decodes the zones in any form against their raster, checking the counts first.
+fn zones(
+    raw: &RawValue,
+    options: &ZoneOptionsSpec,
+    held: &HeldRaster,
+    limits: &Limits,
+    rasters: &dyn RasterSource,
+) -> Result<DecodedZones, DecodeError> {
+    let text = raw.get();
+    let mut out = ZoneBuilder::new(&held.raster, limits);
+    match text.trim_start().as_bytes().first() {
+        Some(b'[') => {
+            if options.id_property.is_some() || options.all_touched.is_some() {
+                return Err(DecodeError::at(
+                    "/zone_options",
+                    "`zone_options` applies to GeoJSON zones only: drop it for a list of zones",
+                ));
+            }
+            let specs: Vec<ZoneSpec> = parse_member(text, "/zones")?;
+            out.check_count(specs.len())?;
+            for (i, spec) in specs.into_iter().enumerate() {
+                let base = format!("/zones/{i}");
+                let (cells, shape) = match (spec.cells, spec.rect) {
+                    (Some(_), Some(_)) => {
+                        return Err(DecodeError::at(
+                            base,
+                            format!(
+                                "zone `{}` gives both `cells` and `rect`: give exactly one",
+                                spec.id
+                            ),
+                        ))
+                    }
+                    (None, None) => {
+                        return Err(DecodeError::at(
+                            base,
+                            format!(
+                                "zone `{}` gives neither `cells` nor `rect`: give one",
+                                spec.id
+                            ),
+                        ))
+                    }
+                    (Some(c), None) => (c, ZoneShape::Cells),
+                    (None, Some(r)) => (rect(&spec.id, r, &held.raster, &base)?, ZoneShape::Rect(r)),
+                };
+                out.add(spec.id, cells, shape, &base)?;
+            }
+        }
+        Some(b'{') => {
+            let peek: ZonesPeek = parse_member(text, "/zones")?;
+            if peek.labels.is_some() && peek.kind.is_none() {
+                let labels: LabelZones = parse_member(text, "/zones")?;
+                label_zones(labels, held, limits, rasters, &mut out)?;
+            } else {
+                geojson_zones(text, options, held, limits, &mut out)?;
+            }
+        }
+        _ => {
+            return Err(DecodeError::at(
+                "/zones",
+                "`zones` must be a list of zones, a GeoJSON Feature or FeatureCollection, or {\"labels\": raster}",
+            ))
+        }
+    }
+    out.finish()
+}
+
+/// GeoJSON polygons, rasterised onto the raster's grid.
+fn geojson_zones(
+    text: &str,
+    options: &ZoneOptionsSpec,
+    held: &HeldRaster,
+    limits: &Limits,
+    out: &mut ZoneBuilder,
+) -> Result<(), DecodeError> {
+    let grid = held.frame.grid;
+    let parsed = parse_zones(
+        text.as_bytes(),
+        &ZoneOptions {
+            id_property: options.id_property.as_deref(),
+            max_vertices: limits.max_vertices,
+            raster_crs: grid.crs,
+        },
+    )
+    .map_err(|e| geo_error(e, "/zones"))?;
+    out.check_count(parsed.len())?;
+    let all_touched = options.all_touched.unwrap_or(false);
+    for zone in parsed {
+        let cells = rasterize(&zone.polygons, &grid, all_touched);
+        let base = format!("/zones{}", zone.pointer);
+        out.add(zone.id, cells, ZoneShape::Polygons(zone.polygons), &base)?;
+    }
+    Ok(())
+}
+
+/// Zones read off a label raster on the raster's grid.
+fn label_zones(
+    labels: LabelZones,
+    held: &HeldRaster,
+    limits: &Limits,
+    rasters: &dyn RasterSource,
+    out: &mut ZoneBuilder,
+) -> Result<(), DecodeError> {
+    const BASE: &str = "/zones/labels";
+    let samples = match labels.labels {
+        RasterInput::Inline(spec) => inline_samples(spec, limits, BASE)?,
+        RasterInput::File(f) => {
+            if !is_tiff(&f.media_type) {
+                return Err(DecodeError::at(
+                    format!("{BASE}/mediaType"),
+                    format!("media type `{}` is not offered for a label raster: send `{}`", f.media_type, TIFF_TYPES[0]),
+                ));
+            }
+            let pointer = format!("{BASE}/value");
+            let bytes = base64_bytes(&f.value, limits.max_raster_file_bytes(), &pointer)?;
+            tiff_samples(&bytes, limits, &pointer)?
+        }
+        RasterInput::Href(h) if held_reference(&h.href).is_none() => {
+            let bytes = rasters
+                .read_file(&h.href, limits.max_raster_file_bytes())
+                .map_err(|mut e| {
+                    e.pointer = format!("{BASE}/href");
+                    e
+                })?;
+            tiff_samples(&bytes, limits, &format!("{BASE}/href"))?
+        }
+        RasterInput::Href(_) | RasterInput::Ref(_) => {
+            return Err(DecodeError::at(
+                BASE,
+                "a label raster cannot be a raster held by this service (those hold probabilities): send it inline or as a GeoTIFF",
+            ))
+        }
+    };
+    let (grid, want) = (samples.frame.grid, held.frame.grid);
+    if (grid.width, grid.height) != (want.width, want.height) {
+        return Err(DecodeError::at(
+            BASE,
             format!(
-                "{} zones exceed this service's limit of {}: send them in several requests",
-                specs.len(),
-                limits.max_zones
+                "the label raster is {}x{}, the probability raster {}x{}: labels must lie on the same grid",
+                grid.width, grid.height, want.width, want.height
             ),
         ));
     }
-    let mut budget = limits.max_zone_cells;
-    let mut zones = Vec::with_capacity(specs.len());
-    for (i, spec) in specs.into_iter().enumerate() {
-        let base = format!("/zones/{i}");
-        let (cells, from_rect) = match (spec.cells, spec.rect) {
-            (Some(_), Some(_)) => {
-                return Err(DecodeError::at(
-                    base,
-                    format!(
-                        "zone `{}` gives both `cells` and `rect`: give exactly one",
-                        spec.id
-                    ),
-                ))
-            }
-            (None, None) => {
-                return Err(DecodeError::at(
-                    base,
-                    format!(
-                        "zone `{}` gives neither `cells` nor `rect`: give one",
-                        spec.id
-                    ),
-                ))
-            }
-            (Some(c), None) => (c, false),
-            (None, Some(r)) => (rect(&spec.id, r, raster, &base)?, true),
-        };
-        if cells.len() as u64 > budget {
+    if let (Some(a), Some(b)) = (grid.transform, want.transform) {
+        if a != b {
+            return Err(DecodeError::at(
+                BASE,
+                format!("the label raster's geotransform {:?} differs from the probability raster's {:?}: labels must lie on the same grid", a.to_gdal(), b.to_gdal()),
+            ));
+        }
+    }
+    let found = zones_from_labels(&samples.values, None).map_err(|e| match e {
+        GeoError::LabelNotInteger { index, value } => DecodeError::at(
+            BASE,
+            format!(
+                "the label at row {}, column {} is {value}: labels are whole numbers (0 or nodata for no zone)",
+                index as u64 / u64::from(grid.width.max(1)),
+                index as u64 % u64::from(grid.width.max(1))
+            ),
+        ),
+        other => geo_error(other, BASE),
+    })?;
+    out.check_count(found.len())?;
+    for (label, cells) in found {
+        out.add(label.to_string(), cells, ZoneShape::Cells, BASE)?;
+    }
+    Ok(())
+}
+
+/// Collects zones in request order: drops nodata cells, keeps zones with no valid cell aside,
+/// and enforces the zone and cell budgets.
+struct ZoneBuilder<'a> {
+    raster: &'a Raster,
+    limits: &'a Limits,
+    budget: u64,
+    zones: Vec<Zone>,
+    entries: Vec<ZoneEntry>,
+    ids: std::collections::HashMap<String, usize>,
+}
+
+impl<'a> ZoneBuilder<'a> {
+    fn new(raster: &'a Raster, limits: &'a Limits) -> Self {
+        ZoneBuilder {
+            raster,
+            limits,
+            budget: limits.max_zone_cells,
+            zones: Vec::new(),
+            entries: Vec::new(),
+            ids: std::collections::HashMap::new(),
+        }
+    }
+
+    fn check_count(&self, n: usize) -> Result<(), DecodeError> {
+        if n > self.limits.max_zones {
+            return Err(DecodeError::limit(
+                "/zones",
+                format!(
+                    "{n} zones exceed this service's limit of {}: send them in several requests",
+                    self.limits.max_zones
+                ),
+            ));
+        }
+        Ok(())
+    }
+
+    /// Adds one zone given by `cells` (row-major, any order); `base` points at the zone.
+    fn add(
+        &mut self,
+        id: String,
+        cells: Vec<u32>,
+        shape: ZoneShape,
+        base: &str,
+    ) -> Result<(), DecodeError> {
+        if cells.len() as u64 > self.budget {
             return Err(DecodeError::limit(
                 base,
                 format!(
                     "zones hold more than this service's limit of {} cells in all: send fewer or smaller zones",
-                    limits.max_zone_cells
+                    self.limits.max_zone_cells
                 ),
             ));
         }
-        budget -= cells.len() as u64;
-        let zone = Zone::new(spec.id, cells, raster).map_err(|e| {
-            let pointer = match &e {
-                EngineError::InvalidZone { .. } if from_rect => format!("{base}/rect"),
-                EngineError::InvalidZone {
-                    problem: ZoneProblem::Cell { position, .. },
-                    ..
-                } => format!("{base}/cells/{position}"),
-                _ => format!("{base}/cells"),
-            };
-            DecodeError::at(pointer, e.to_string())
-        })?;
-        zones.push(zone);
-    }
-    ZoneSet::new(zones).map_err(|e| {
-        let pointer = match &e {
-            EngineError::InvalidZone {
-                problem: ZoneProblem::DuplicateId { second, .. },
-                ..
-            } => format!("/zones/{second}/id"),
-            _ => "/zones".into(),
+        self.budget -= cells.len() as u64;
+        let index = self.entries.len();
+        if let Some(&first) = self.ids.get(&id) {
+            return Err(DecodeError::at(
+                format!("{base}/id"),
+                format!("zone id `{id}` is used by zone {first} and zone {index}: give every zone its own id"),
+            ));
+        }
+        let n = u64::from(self.raster.width()) * u64::from(self.raster.height());
+        if let Some(position) = cells.iter().position(|&c| u64::from(c) >= n) {
+            return Err(DecodeError::at(
+                format!("{base}/cells/{position}"),
+                format!(
+                    "zone `{id}` has cell {}, outside the {}x{} raster (last index {})",
+                    cells[position],
+                    self.raster.width(),
+                    self.raster.height(),
+                    n - 1
+                ),
+            ));
+        }
+        let total = cells.len();
+        let valid: Vec<u32> = cells
+            .into_iter()
+            .filter(|&c| self.raster.cell_problem(c).is_none())
+            .collect();
+        let nodata_cells = (total - valid.len()) as u64;
+        let slot = if valid.is_empty() {
+            None
+        } else {
+            let zone = Zone::new(id.clone(), valid, self.raster).map_err(|e| {
+                let pointer = match &e {
+                    EngineError::InvalidZone {
+                        problem: ZoneProblem::Repeated { .. },
+                        ..
+                    } if matches!(shape, ZoneShape::Cells) => format!("{base}/cells"),
+                    _ => base.to_string(),
+                };
+                DecodeError::at(pointer, e.to_string())
+            })?;
+            self.zones.push(zone);
+            Some(self.zones.len() - 1)
         };
-        DecodeError::at(pointer, e.to_string())
-    })
+        self.ids.insert(id.clone(), index);
+        self.entries.push(ZoneEntry {
+            id,
+            nodata_cells,
+            slot,
+            shape,
+        });
+        Ok(())
+    }
+
+    fn finish(self) -> Result<DecodedZones, DecodeError> {
+        if self.entries.is_empty() {
+            return Err(DecodeError::at(
+                "/zones",
+                "no zones were given: give at least one zone",
+            ));
+        }
+        let set = if self.zones.is_empty() {
+            None
+        } else {
+            Some(ZoneSet::new(self.zones).map_err(|e| DecodeError::at("/zones", e.to_string()))?)
+        };
+        Ok(DecodedZones {
+            set,
+            entries: self.entries,
+        })
+    }
 }
 
 fn rect(id: &str, r: RectSpec, raster: &Raster, base: &str) -> Result<Vec<u32>, DecodeError> {

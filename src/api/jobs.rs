@@ -257,7 +257,8 @@ pub async fn job(
 
 #[utoipa::path(get, path = "/jobs/{jobId}/results", tag = "ogc",
     params(("jobId" = String, Path, description = "job id")),
-    responses((status = 200, description = "the results, shaped as the execute request asked", body = Object),
+    responses((status = 200, description = "the results, shaped and encoded as the execute request asked (JSON, GeoJSON, CSV or GeoTIFF)",
+                  content((Object = "application/json"), (Object = "application/geo+json"), (String = "text/csv"), (Vec<u8> = "image/tiff; application=geotiff"))),
               (status = 404, description = "no such job, or result not ready", body = Problem, content_type = "application/problem+json"),
               (status = 500, description = "the job failed: its exception document", body = Problem, content_type = "application/problem+json")))]
 pub async fn results(
@@ -269,12 +270,18 @@ pub async fn results(
         .status(&id)
         .ok_or_else(|| ApiError::NoSuchJob { id: id.clone() })?;
     match job.outcome().cloned() {
-        Some(Outcome::Results(body)) => Ok((
-            StatusCode::OK,
-            [(header::CONTENT_TYPE, HeaderValue::from_static(JSON))],
-            body,
-        )
-            .into_response()),
+        Some(Outcome::Results(results)) => {
+            let media_type =
+                HeaderValue::from_str(&results.media_type).map_err(|e| ApiError::Internal {
+                    cause: format!("a stored media type is not a header value: {e}"),
+                })?;
+            Ok((
+                StatusCode::OK,
+                [(header::CONTENT_TYPE, media_type)],
+                results.body,
+            )
+                .into_response())
+        }
         Some(Outcome::Failure { status, body }) => {
             let status = StatusCode::from_u16(status).unwrap_or(StatusCode::INTERNAL_SERVER_ERROR);
             Ok((

@@ -10,6 +10,7 @@ pub mod body;
 pub mod cache;
 pub mod config;
 pub mod decode;
+pub mod formats;
 pub mod jobs;
 pub mod links;
 pub mod metrics;

@@ -22,10 +22,10 @@ use super::body;
 use super::jobs::{status_info, StatusInfo};
 use super::links::{link, Link, JSON, OGC_REL};
 use super::problem::{ApiError, Problem};
-use super::processes::{Prepared, Process, ResponseMode};
+use super::processes::{Output, Prepared, Process, ResponseMode};
 use super::state::AppState;
 use crate::engine::Control;
-use crate::jobs::{CancelOnDrop, WorkError};
+use crate::jobs::{CancelOnDrop, Results, WorkError};
 
 const CONF: &str = "http://www.opengis.net/spec/ogcapi-processes-1/1.0/conf";
 
@@ -217,13 +217,16 @@ fn shape(mode: ResponseMode, output: &str, raw: Bytes) -> Bytes {
     params(("processId" = String, Path, description = "process id"),
            ("Prefer" = Option<String>, Header, description = "`respond-async` to run as a job; sync otherwise")),
     request_body(content = Object, description = "`{\"inputs\": {...}, \"outputs\": {...}, \"response\": \"raw\"|\"document\"}`; for zone-counts the inputs are the request document of `zonetally eval`", content_type = "application/json"),
-    responses((status = 200, description = "sync results: the output (raw) or {output id: output} (document)", body = Object),
+    responses((status = 200, description = "sync results: the output (raw) or {output id: output} (document), in the format chosen by `outputs.<id>.format.mediaType` or `Accept`: JSON (default); GeoJSON or CSV for zone-counts; a GeoTIFF (posterior, prior) for cell-posterior",
+                  content((Object = "application/json"), (Object = "application/geo+json"), (String = "text/csv"), (Vec<u8> = "image/tiff; application=geotiff"))),
               (status = 201, description = "async: job created", body = StatusInfo,
                   headers(("Location" = String, description = "the job's status URL"))),
               (status = 400, description = "invalid inputs", body = Problem, content_type = "application/problem+json"),
               (status = 404, description = "no such process", body = Problem, content_type = "application/problem+json"),
+              (status = 406, description = "`Accept` names no format the output is offered in", body = Problem, content_type = "application/problem+json"),
               (status = 413, description = "body, raster, zones or cost too large, or too costly for sync", body = Problem, content_type = "application/problem+json"),
               (status = 415, description = "not JSON", body = Problem, content_type = "application/problem+json"),
+              (status = 422, description = "a GeoTIFF or GeoJSON input that was read but cannot be used (rotated grid, point zone, unclosed ring, value outside [0, 1])", body = Problem, content_type = "application/problem+json"),
               (status = 503, description = "compute queue full", body = Problem, content_type = "application/problem+json")))]
 pub async fn execute(
     State(state): State<AppState>,
@@ -243,10 +246,14 @@ pub async fn execute(
         state.clone(),
         process.clone(),
     );
+    let accept = headers
+        .get(header::ACCEPT)
+        .and_then(|v| v.to_str().ok())
+        .map(str::to_string);
     let (mode, prepared) = state
         .decode(move || {
             body::check_depth(&body, depth)?;
-            p.prepare(&body, &st.context())
+            p.prepare(&body, accept.as_deref(), &st.context())
         })
         .await?;
     if wants_async {
@@ -263,14 +270,15 @@ pub async fn execute(
     // Dropped with this future when the client goes away or the request times out.
     let mut guard = CancelOnDrop::new(control.clone());
     let st = state.clone();
-    let raw = state
+    let output = state
         .compute(control, move |c| run_counted(prepared, &st, c))
         .await?;
     guard.disarm();
+    let media_type = HeaderValue::from_static(output.format.media_type());
     let mut resp = (
         StatusCode::OK,
-        [(header::CONTENT_TYPE, HeaderValue::from_static(JSON))],
-        shape(mode, process.output(), raw),
+        [(header::CONTENT_TYPE, media_type)],
+        shape(mode, process.output(), output.body),
     )
         .into_response();
     if named_sync {
@@ -288,7 +296,7 @@ fn run_counted(
     prepared: Box<dyn Prepared>,
     state: &AppState,
     control: &Control,
-) -> Result<Bytes, ApiError> {
+) -> Result<Output, ApiError> {
     let cells = prepared.cells();
     let result = prepared.run(&state.context(), control);
     match &result {
@@ -308,7 +316,10 @@ fn start_job(
 ) -> Result<Response, ApiError> {
     let (st, output) = (state.clone(), process.output());
     let work = Box::new(move |c: &Control| match run_counted(prepared, &st, c) {
-        Ok(raw) => Ok(shape(mode, output, raw)),
+        Ok(out) => Ok(Results {
+            body: shape(mode, output, out.body),
+            media_type: out.format.media_type().to_string(),
+        }),
         Err(ApiError::Cancelled) => Err(WorkError::Cancelled),
         Err(e) => Err(WorkError::Failed(e.to_failure())),
     });
@@ -349,7 +360,7 @@ mod tests {
         fn cells(&self) -> u64 {
             1
         }
-        fn run(self: Box<Self>, _: &Context, _: &Control) -> Result<Bytes, ApiError> {
+        fn run(self: Box<Self>, _: &Context, _: &Control) -> Result<Output, ApiError> {
             panic!("index out of bounds in a kernel")
         }
     }

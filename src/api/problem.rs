@@ -32,6 +32,11 @@ pub struct Problem {
 /// Every way a request can fail.
 #[derive(Clone, Debug, PartialEq)]
 pub enum ApiError {
+    /// A file or geometry was read but cannot be used as given (422).
+    Unusable {
+        pointer: String,
+        detail: String,
+    },
     /// A field's value is wrong (a probability above 1, a cell outside the raster, ...).
     InvalidInput {
         pointer: String,
@@ -59,6 +64,8 @@ pub enum ApiError {
     },
     UnsupportedMediaType {
         got: String,
+        /// What to send instead, e.g. "JSON with `Content-Type: application/json`".
+        accepted: &'static str,
     },
     NoSuchProcess {
         id: String,
@@ -78,6 +85,11 @@ pub enum ApiError {
         path: String,
     },
     MethodNotAllowed,
+    /// `Accept` names no format the output is offered in.
+    NotAcceptable {
+        got: String,
+        supported: String,
+    },
     BadQuery {
         parameter: String,
         detail: String,
@@ -109,11 +121,13 @@ impl ApiError {
             | UnknownRaster { .. }
             | BadQuery { .. } => StatusCode::BAD_REQUEST,
             TooLarge { .. } | SyncTooCostly { .. } => StatusCode::PAYLOAD_TOO_LARGE,
+            Unusable { .. } => StatusCode::UNPROCESSABLE_ENTITY,
             UnsupportedMediaType { .. } => StatusCode::UNSUPPORTED_MEDIA_TYPE,
             NoSuchProcess { .. } | NoSuchJob { .. } | ResultNotReady { .. } | NotFound { .. } => {
                 StatusCode::NOT_FOUND
             }
             MethodNotAllowed => StatusCode::METHOD_NOT_ALLOWED,
+            NotAcceptable { .. } => StatusCode::NOT_ACCEPTABLE,
             Busy { .. } | ShuttingDown | Cancelled => StatusCode::SERVICE_UNAVAILABLE,
             Timeout { .. } => StatusCode::GATEWAY_TIMEOUT,
             Internal { .. } => StatusCode::INTERNAL_SERVER_ERROR,
@@ -127,6 +141,7 @@ impl ApiError {
         let own = |name: &str| format!("/problems/{name}");
         let (kind, title, detail, pointer) = match self {
             InvalidInput { pointer, detail } => (own("invalid-input"), "invalid input", detail.clone(), Some(pointer.clone())),
+            Unusable { pointer, detail } => (own("unusable-content"), "unusable file or geometry", detail.clone(), Some(pointer.clone())),
             MalformedJson { pointer, detail } => (own("malformed-json"), "malformed JSON", detail.clone(), Some(pointer.clone())),
             NestingTooDeep { limit, offset } => (
                 own("nesting-too-deep"),
@@ -143,10 +158,10 @@ impl ApiError {
                 ),
                 Some("/inputs/zones".to_string()),
             ),
-            UnsupportedMediaType { got } => (
+            UnsupportedMediaType { got, accepted } => (
                 own("unsupported-media-type"),
                 "unsupported media type",
-                format!("the body was sent as `{got}`: send JSON with `Content-Type: application/json`"),
+                format!("the body was sent as `{got}`: send {accepted}"),
                 None,
             ),
             NoSuchProcess { id } => (
@@ -180,6 +195,12 @@ impl ApiError {
                 own("method-not-allowed"),
                 "method not allowed",
                 "this endpoint does not take that method: see /openapi.json for the methods of each path".to_string(),
+                None,
+            ),
+            NotAcceptable { got, supported } => (
+                own("not-acceptable"),
+                "no acceptable format",
+                format!("`Accept: {got}` names no format this output is offered in: accept one of {supported}, or ask in the body with `outputs.<id>.format.mediaType`"),
                 None,
             ),
             BadQuery { parameter, detail } => (own("bad-query"), "bad query parameter", format!("parameter `{parameter}`: {detail}"), None),
@@ -223,6 +244,10 @@ impl ApiError {
         let pointer = format!("{base}{}", err.pointer);
         match err.kind {
             DecodeKind::Invalid => ApiError::InvalidInput {
+                pointer,
+                detail: err.detail,
+            },
+            DecodeKind::Unusable => ApiError::Unusable {
                 pointer,
                 detail: err.detail,
             },

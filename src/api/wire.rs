@@ -4,21 +4,49 @@
 //! The request document is the same for `zonetally eval` and for the service's process inputs.
 
 use serde::{Deserialize, Serialize};
+use serde_json::value::RawValue;
 use utoipa::ToSchema;
 
 use crate::engine::{Evaluation, TotalCheck, ZoneSummary};
 
+/// The sample type of `values_base64`: little-endian IEEE 754 floats.
+#[derive(Clone, Copy, Debug, Default, Deserialize, Serialize, ToSchema, PartialEq, Eq)]
+#[serde(rename_all = "lowercase")]
+pub enum SampleType {
+    Float32,
+    #[default]
+    Float64,
+}
+
 /// The raster as sent: row-major values, row 0 at the top; `null` or the `nodata` value marks
-/// cells outside the study area.
+/// cells outside the study area. Give the values as `values` (JSON numbers) or as
+/// `values_base64` (little-endian floats, see `sample_type`), not both.
 #[derive(Clone, Debug, Deserialize, Serialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RasterSpec {
     pub width: u32,
     pub height: u32,
     /// `width * height` probabilities in [0, 1], row-major; `null` for nodata.
-    pub values: Vec<Option<f64>>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub values: Option<Vec<Option<f64>>>,
+    /// The same values as base64 of little-endian floats (`sample_type`, float64 by default);
+    /// NaN or the `nodata` value for nodata.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub values_base64: Option<String>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub sample_type: Option<SampleType>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub nodata: Option<f64>,
+    /// Where the raster lies: the six terms `[x0, dx, rx, y0, ry, dy]` mapping (col, row) to map
+    /// coordinates (x0, y0 the outer corner of cell (0, 0); north-up: rx = ry = 0, dy < 0).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub geotransform: Option<[f64; 6]>,
+    /// EPSG code of the map coordinates, carried to every output.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub crs: Option<u32>,
+    /// Multiplies every value before it is checked (e.g. 0.01 for percent); 1 by default.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub scale: Option<f64>,
 }
 
 /// A raster by content hash, as returned by `POST /rasters`.
@@ -30,12 +58,40 @@ pub struct RasterRef {
     pub reference: String,
 }
 
-/// The `raster` field: inline, or a reference to a raster the service holds.
+/// A raster by link: `/rasters/sha256:...` (held by this service) or a GeoTIFF file under the
+/// directory the operator mounted with `--data-dir` (a relative path). Nothing is fetched
+/// from the network.
+#[derive(Clone, Debug, Deserialize, Serialize, ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct RasterHref {
+    pub href: String,
+    /// Multiplies every value (integer rasters: e.g. 0.01 for percent).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub scale: Option<f64>,
+}
+
+/// A GeoTIFF sent inside the JSON document (OGC qualified input value).
+#[derive(Clone, Debug, Deserialize, Serialize, ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct RasterFile {
+    /// The file's bytes, base64.
+    pub value: String,
+    /// `image/tiff; application=geotiff` (or `image/tiff`).
+    #[serde(rename = "mediaType")]
+    pub media_type: String,
+    /// Multiplies every value (integer rasters: e.g. 0.01 for percent).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub scale: Option<f64>,
+}
+
+/// The `raster` field: inline values, a reference or link to a raster, or a GeoTIFF.
 #[derive(Clone, Debug, Deserialize, Serialize, ToSchema)]
 #[serde(untagged, try_from = "RasterFields")]
 pub enum RasterInput {
     Inline(RasterSpec),
     Ref(RasterRef),
+    Href(RasterHref),
+    File(RasterFile),
 }
 
 impl From<RasterSpec> for RasterInput {
@@ -44,43 +100,134 @@ impl From<RasterSpec> for RasterInput {
     }
 }
 
-/// Every field either form may carry; `TryFrom` picks the form, so a mistake names the field.
+/// Every field any form may carry; `TryFrom` picks the form, so a mistake names the field.
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
 struct RasterFields {
     #[serde(rename = "ref")]
     reference: Option<String>,
+    href: Option<String>,
+    value: Option<String>,
+    #[serde(rename = "mediaType")]
+    media_type: Option<String>,
     width: Option<u32>,
     height: Option<u32>,
     values: Option<Vec<Option<f64>>>,
+    values_base64: Option<String>,
+    sample_type: Option<SampleType>,
     nodata: Option<f64>,
+    geotransform: Option<[f64; 6]>,
+    crs: Option<u32>,
+    scale: Option<f64>,
+}
+
+impl RasterFields {
+    /// The inline-only fields present, by name.
+    fn inline_fields(&self) -> Vec<&'static str> {
+        [
+            ("width", self.width.is_some()),
+            ("height", self.height.is_some()),
+            ("values", self.values.is_some()),
+            ("values_base64", self.values_base64.is_some()),
+            ("sample_type", self.sample_type.is_some()),
+            ("nodata", self.nodata.is_some()),
+            ("geotransform", self.geotransform.is_some()),
+            ("crs", self.crs.is_some()),
+        ]
+        .into_iter()
+        .filter_map(|(n, present)| present.then_some(n))
+        .collect()
+    }
 }
 
 impl TryFrom<RasterFields> for RasterInput {
     type Error = String;
     fn try_from(f: RasterFields) -> Result<Self, String> {
-        match (f.reference, f.width, f.height, f.values) {
-            (Some(r), None, None, None) if f.nodata.is_none() => Ok(RasterInput::Ref(RasterRef { reference: r })),
-            (Some(_), ..) => Err("a raster given by `ref` takes no other field: send either `ref` alone or `width`, `height` and `values`".into()),
-            (None, Some(width), Some(height), Some(values)) => {
-                Ok(RasterInput::Inline(RasterSpec { width, height, values, nodata: f.nodata }))
+        let forms: Vec<&str> = [
+            ("ref", f.reference.is_some()),
+            ("href", f.href.is_some()),
+            ("value", f.value.is_some()),
+        ]
+        .into_iter()
+        .filter_map(|(n, present)| present.then_some(n))
+        .collect();
+        if forms.len() > 1 {
+            return Err(format!(
+                "the raster gives both `{}`: send one of `ref`, `href`, `value` or the inline fields",
+                forms.join("` and `")
+            ));
+        }
+        let inline = f.inline_fields();
+        if let Some(form) = forms.first() {
+            if !inline.is_empty() {
+                return Err(format!(
+                    "a raster given by `{form}` takes no `{}`: the file or held raster carries its own grid",
+                    inline.join("`, `")
+                ));
             }
-            (None, w, h, v) => {
-                let missing: Vec<&str> = [("width", w.is_none()), ("height", h.is_none()), ("values", v.is_none())]
-                    .into_iter()
-                    .filter_map(|(n, m)| m.then_some(n))
-                    .collect();
-                Err(format!(
-                    "the raster lacks `{}`: send `width`, `height` and `values` (or `ref` from POST /rasters)",
-                    missing.join("`, `")
-                ))
+        }
+        if f.media_type.is_some() && f.value.is_none() {
+            return Err("`mediaType` goes with `value` (a GeoTIFF as base64)".into());
+        }
+        if f.scale.is_some() && f.reference.is_some() {
+            return Err(
+                "a raster given by `ref` takes no `scale`: it was scaled when posted".into(),
+            );
+        }
+        if let Some(reference) = f.reference {
+            return Ok(RasterInput::Ref(RasterRef { reference }));
+        }
+        if let Some(href) = f.href {
+            return Ok(RasterInput::Href(RasterHref {
+                href,
+                scale: f.scale,
+            }));
+        }
+        if let Some(value) = f.value {
+            let media_type = f.media_type.ok_or(
+                "a raster `value` needs its `mediaType`: `image/tiff; application=geotiff`",
+            )?;
+            return Ok(RasterInput::File(RasterFile {
+                value,
+                media_type,
+                scale: f.scale,
+            }));
+        }
+        let missing: Vec<&str> = [
+            ("width", f.width.is_none()),
+            ("height", f.height.is_none()),
+            (
+                "values` or `values_base64",
+                f.values.is_none() && f.values_base64.is_none(),
+            ),
+        ]
+        .into_iter()
+        .filter_map(|(n, m)| m.then_some(n))
+        .collect();
+        match (f.width, f.height) {
+            (Some(width), Some(height)) if missing.is_empty() => {
+                Ok(RasterInput::Inline(RasterSpec {
+                    width,
+                    height,
+                    values: f.values,
+                    values_base64: f.values_base64,
+                    sample_type: f.sample_type,
+                    nodata: f.nodata,
+                    geotransform: f.geotransform,
+                    crs: f.crs,
+                    scale: f.scale,
+                }))
             }
+            _ => Err(format!(
+                "the raster lacks `{}`: send `width`, `height` and `values` (or `ref` from POST /rasters, `href`, or a GeoTIFF as `value`)",
+                missing.join("`, `")
+            )),
         }
     }
 }
 
 /// A rectangle of cells: `rows` x `cols` cells from (`row`, `col`), row 0 at the top.
-#[derive(Clone, Copy, Debug, Deserialize, Serialize, ToSchema)]
+#[derive(Clone, Copy, Debug, PartialEq, Deserialize, Serialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RectSpec {
     pub row: u32,
@@ -89,7 +236,8 @@ pub struct RectSpec {
     pub cols: u32,
 }
 
-/// A zone: an id and either a list of cell indices or a rectangle.
+/// A zone: an id and either a list of cell indices or a rectangle. Nodata cells in it are
+/// dropped (and counted in the result's `nodata_cells`), not refused.
 #[derive(Clone, Debug, Deserialize, Serialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct ZoneSpec {
@@ -125,12 +273,57 @@ pub struct SummariesSpec {
     pub tolerance: Option<f64>,
 }
 
+/// The `zones` field in any of its forms (a schema only: `decode` reads the field's bytes
+/// itself, so a large GeoJSON document is streamed and its vertices counted before any is held).
+#[derive(Serialize, ToSchema)]
+#[serde(untagged)]
+#[allow(dead_code)]
+pub enum ZonesDoc {
+    /// Zones by cell list or rectangle.
+    List(Vec<ZoneSpec>),
+    /// A GeoJSON Feature or FeatureCollection of polygons.
+    Features(GeoJsonZones),
+    /// A zone label raster.
+    Labels(LabelZones),
+}
+
+/// A GeoJSON (RFC 7946) Feature or FeatureCollection of Polygon / MultiPolygon features in the
+/// raster's CRS; the zone id is the feature `id`, or the property `zone_options.id_property`
+/// names. A cell is in a zone when its centre is inside (or, with `all_touched`, when the zone
+/// touches it).
+#[derive(Serialize, ToSchema)]
+pub struct GeoJsonZones(serde_json::Value);
+
+/// Zones read off an integer raster on the same grid: each distinct value a zone (its id the
+/// value), 0 or nodata in no zone.
+#[derive(Clone, Debug, Deserialize, Serialize, ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct LabelZones {
+    pub labels: RasterInput,
+}
+
+/// How GeoJSON zones become cells.
+#[derive(Clone, Debug, Default, Deserialize, Serialize, ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct ZoneOptions {
+    /// Take each zone's id from this feature property instead of the feature `id`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub id_property: Option<String>,
+    /// Also count the cells a polygon's boundary touches (default: cells whose centre is inside).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub all_touched: Option<bool>,
+}
+
 /// The request document read by `zonetally eval` and taken as process inputs.
 #[derive(Clone, Debug, Deserialize, Serialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct EvalRequest {
     pub raster: RasterInput,
-    pub zones: Vec<ZoneSpec>,
+    /// A list of zones (`ZoneSpec`), a GeoJSON Feature or FeatureCollection, or `{"labels": raster}`.
+    #[schema(value_type = ZonesDoc)]
+    pub zones: Box<RawValue>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub zone_options: Option<ZoneOptions>,
     pub evidence: EvidenceSpec,
     #[serde(default)]
     pub summaries: SummariesSpec,
@@ -166,7 +359,15 @@ pub struct PriorOut {
 #[derive(Clone, Debug, Serialize, Deserialize, PartialEq, ToSchema)]
 pub struct ZoneResult {
     pub id: String,
+    /// Valid cells used.
     pub cells: usize,
+    /// Nodata cells of the zone, dropped.
+    #[serde(default)]
+    pub nodata_cells: u64,
+    /// Set when the zone has no valid cell (all nodata or outside the raster): its count is 0
+    /// for certain.
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub no_valid_cells: bool,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub pmf: Option<PmfOut>,
     pub mean: f64,
@@ -209,6 +410,8 @@ impl From<ZoneSummary> for ZoneResult {
         ZoneResult {
             id: z.id,
             cells: z.cells,
+            nodata_cells: 0,
+            no_valid_cells: z.cells == 0,
             pmf,
             mean: z.mean,
             sd: z.sd,

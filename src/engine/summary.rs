@@ -36,6 +36,30 @@ pub struct ZoneSummary {
     pub error_bound: f64,
 }
 
+impl ZoneSummary {
+    /// The summary of a zone with no valid cell (all nodata, or outside the raster): its count
+    /// is 0 for certain, whatever the evidence, and nothing was truncated.
+    pub fn certain_zero(id: String, settings: &crate::engine::Settings) -> ZoneSummary {
+        let pmf = vec![1.0];
+        let s = summarise(0, &pmf, settings.level(), settings.thresholds());
+        ZoneSummary {
+            id,
+            cells: 0,
+            offset: 0,
+            pmf: if settings.pmf() { pmf } else { Vec::new() },
+            mean: s.mean,
+            sd: s.sd,
+            mode: s.mode,
+            median: s.median,
+            interval: s.interval,
+            exceedance: s.exceedance,
+            prior_mean: 0.0,
+            prior_sd: 0.0,
+            error_bound: 0.0,
+        }
+    }
+}
+
 /// The summaries of one pmf.
 #[derive(Clone, Debug, PartialEq)]
 pub(crate) struct Summary {

@@ -54,11 +54,28 @@ impl JobState {
     }
 }
 
+/// A results body and its media type, as served by `/jobs/{id}/results`.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Results {
+    pub body: Bytes,
+    pub media_type: String,
+}
+
+impl Results {
+    /// A JSON results body.
+    pub fn json(body: Bytes) -> Results {
+        Results {
+            body,
+            media_type: "application/json".into(),
+        }
+    }
+}
+
 /// What a finished job left behind, already encoded by the caller.
 #[derive(Clone, Debug, PartialEq)]
 pub enum Outcome {
-    /// The results body, as served by `/jobs/{id}/results`.
-    Results(Bytes),
+    /// The results, as served by `/jobs/{id}/results`.
+    Results(Results),
     /// An HTTP status and the exception (problem) document explaining the failure.
     Failure { status: u16, body: Bytes },
 }
@@ -196,7 +213,7 @@ impl JobRecord {
     /// running -> successful, keeping the results until `now + ttl`.
     pub(super) fn succeed(
         &mut self,
-        results: Bytes,
+        results: Results,
         now: SystemTime,
         ttl: Duration,
     ) -> Result<(), Refused> {
@@ -265,7 +282,8 @@ impl JobRecord {
     /// Bytes the record holds (for store accounting).
     pub fn heap_bytes(&self) -> usize {
         let outcome = match &self.outcome {
-            Some(Outcome::Results(b)) | Some(Outcome::Failure { body: b, .. }) => b.len(),
+            Some(Outcome::Results(r)) => r.body.len() + r.media_type.len(),
+            Some(Outcome::Failure { body: b, .. }) => b.len(),
             None => 0,
         };
         std::mem::size_of::<JobRecord>()
@@ -311,8 +329,12 @@ mod tests {
             "an unchanged figure is no change"
         );
         assert!(j.report_progress(100, t) && j.progress() == 99);
-        j.succeed(Bytes::from_static(b"[]"), t, Duration::from_secs(5))
-            .unwrap();
+        j.succeed(
+            Results::json(Bytes::from_static(b"[]")),
+            t,
+            Duration::from_secs(5),
+        )
+        .unwrap();
         assert_eq!((j.state(), j.progress()), (JobState::Successful, 100));
         assert_eq!(j.expires(), Some(t + Duration::from_secs(5)));
         assert!(j.is_expired(t + Duration::from_secs(5)));
@@ -331,7 +353,7 @@ mod tests {
         j.fail(failure(), t, Duration::ZERO).unwrap();
         assert!(j.start(t).is_err(), "a failed job never starts");
         assert!(j
-            .succeed(Bytes::new(), t, Duration::ZERO)
+            .succeed(Results::json(Bytes::new()), t, Duration::ZERO)
             .is_err_and(|r| r.from == JobState::Failed));
         assert_eq!(j.message(), "bad");
         let mut k = job();

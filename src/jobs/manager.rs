@@ -13,10 +13,9 @@ use std::collections::HashMap;
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, SystemTime};
 
-use bytes::Bytes;
 use tokio::sync::oneshot;
 
-use super::lifecycle::{Failure, JobRecord, JobState};
+use super::lifecycle::{Failure, JobRecord, JobState, Results};
 use super::runner::{Finished, Pool, QueueFull};
 use super::{JobCounts, JobFilter, JobStore};
 use crate::engine::Control;
@@ -51,7 +50,7 @@ pub enum WorkError {
 }
 
 /// A job's work: runs on a compute thread and returns the encoded results.
-pub type Work = Box<dyn FnOnce(&Control) -> Result<Bytes, WorkError> + Send>;
+pub type Work = Box<dyn FnOnce(&Control) -> Result<Results, WorkError> + Send>;
 
 #[derive(Clone)]
 pub struct Jobs {
@@ -77,7 +76,7 @@ impl Inner {
     fn end(
         &self,
         id: &str,
-        finished: Result<Finished<Result<Bytes, WorkError>>, oneshot::error::RecvError>,
+        finished: Result<Finished<Result<Results, WorkError>>, oneshot::error::RecvError>,
     ) {
         let now = SystemTime::now();
         let ttl = self.ttl;

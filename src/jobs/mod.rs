@@ -13,7 +13,7 @@ mod runner;
 
 use std::time::SystemTime;
 
-pub use lifecycle::{Failure, JobRecord, JobState, Outcome, Refused};
+pub use lifecycle::{Failure, JobRecord, JobState, Outcome, Refused, Results};
 pub use manager::{Ending, Failures, Jobs, WorkError};
 pub use memory::MemoryStore;
 pub use runner::{CancelOnDrop, Finished, Pool, PoolStats, QueueFull};

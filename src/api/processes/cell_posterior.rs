@@ -4,10 +4,11 @@ use bytes::Bytes;
 use serde_json::{json, Value};
 
 use super::{
-    check_cost, input, parse_execute, run_error, schema_of, to_json, Context, Prepared, Process,
-    ResponseMode,
+    check_cost, input, parse_execute, run_error, schema_of, to_json, Context, Output, Prepared,
+    Process, ResponseMode,
 };
-use crate::api::decode::{self, DecodeError, DecodedCells};
+use crate::api::decode::{self, DecodeError, DecodedCells, Frame};
+use crate::api::formats::{self, Format};
 use crate::api::problem::ApiError;
 use crate::api::wire::{
     CellPosteriorOut, EvidenceSpec, PosteriorDocument, PosteriorInputs, PosteriorSummaries,
@@ -18,6 +19,9 @@ use crate::engine::{self, CellPlan, Control, EngineError, Evidence, Raster, Sett
 pub struct CellPosteriorProcess;
 
 const OUTPUT: &str = "posterior";
+
+/// The formats of the `posterior` output.
+pub const FORMATS: [Format; 2] = [Format::Json, Format::GeoTiff];
 
 impl Process for CellPosteriorProcess {
     fn id(&self) -> &'static str {
@@ -43,13 +47,19 @@ impl Process for CellPosteriorProcess {
     fn outputs(&self) -> Value {
         json!({OUTPUT: {"title": "posterior", "description": "prior and posterior probability of each requested cell, and the total check", "schema": schema_of::<PosteriorDocument>()}})
     }
+    fn formats(&self) -> &'static [Format] {
+        &FORMATS
+    }
     fn prepare(
         &self,
         body: &[u8],
+        accept: Option<&str>,
         ctx: &Context,
     ) -> Result<(ResponseMode, Box<dyn Prepared>), ApiError> {
-        let (req, mode): (PosteriorInputs, _) = parse_execute(body, OUTPUT)?;
-        let cells = prepare(req, ctx).map_err(|e| ApiError::from_decode(e, "/inputs"))?;
+        let (req, mode, format): (PosteriorInputs, _, _) =
+            parse_execute(body, OUTPUT, accept, &FORMATS)?;
+        let mut cells = prepare(req, ctx).map_err(|e| ApiError::from_decode(e, "/inputs"))?;
+        cells.format = format;
         Ok((mode, Box::new(cells)))
     }
 }
@@ -58,9 +68,12 @@ impl Process for CellPosteriorProcess {
 pub struct Cells {
     raster_key: Option<String>,
     raster: std::sync::Arc<Raster>,
+    frame: Frame,
     evidence: Evidence,
     settings: Settings,
     plan: CellPlan,
+    /// How `run` encodes the results (JSON unless chosen otherwise).
+    pub format: Format,
 }
 
 /// Decodes and plans a request, refusing it when the planned cost is over the limit.
@@ -71,9 +84,11 @@ pub fn prepare(req: PosteriorInputs, ctx: &Context) -> Result<Cells, DecodeError
     Ok(Cells {
         raster_key: d.raster_key,
         raster: d.raster,
+        frame: d.frame,
         evidence: d.evidence,
         settings: d.settings,
         plan,
+        format: Format::Json,
     })
 }
 
@@ -110,7 +125,14 @@ impl Prepared for Cells {
     fn cells(&self) -> u64 {
         self.plan.cells() as u64
     }
-    fn run(self: Box<Self>, ctx: &Context, control: &Control) -> Result<Bytes, ApiError> {
-        to_json(&compute(&self, ctx, control).map_err(run_error)?)
+    fn run(self: Box<Self>, ctx: &Context, control: &Control) -> Result<Output, ApiError> {
+        let doc = compute(&self, ctx, control).map_err(run_error)?;
+        match self.format {
+            Format::GeoTiff => Ok(Output {
+                body: Bytes::from(formats::posterior_tiff(&doc, &self.raster, &self.frame)?),
+                format: Format::GeoTiff,
+            }),
+            _ => to_json(&doc),
+        }
     }
 }

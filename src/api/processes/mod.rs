@@ -18,6 +18,7 @@ use serde::Deserialize;
 use serde_json::Value;
 
 use super::decode::{DecodeError, Limits, RasterSource};
+use super::formats::{self, Format};
 use super::problem::ApiError;
 use crate::engine::{Control, EngineError, Evidence, Normaliser, Raster};
 
@@ -74,10 +75,15 @@ pub trait Process: Send + Sync + 'static {
     fn inputs(&self) -> Value;
     /// The OGC `outputs` map.
     fn outputs(&self) -> Value;
-    /// Parses and validates an execute body. Runs on a blocking thread, never the async workers.
+    /// The formats its output is offered in, JSON first.
+    fn formats(&self) -> &'static [Format];
+    /// Parses and validates an execute body; `accept` is the request's `Accept` header, which
+    /// chooses the output format when the body does not. Runs on a blocking thread, never the
+    /// async workers.
     fn prepare(
         &self,
         body: &[u8],
+        accept: Option<&str>,
         ctx: &Context,
     ) -> Result<(ResponseMode, Box<dyn Prepared>), ApiError>;
 }
@@ -88,8 +94,15 @@ pub trait Prepared: Send {
     fn estimated_cost(&self) -> f64;
     /// Cells the computation goes through, for the cells-processed counter.
     fn cells(&self) -> u64;
-    /// Computes the output and returns its JSON. Runs on the compute pool.
-    fn run(self: Box<Self>, ctx: &Context, control: &Control) -> Result<Bytes, ApiError>;
+    /// Computes the output in the format chosen at `prepare`. Runs on the compute pool.
+    fn run(self: Box<Self>, ctx: &Context, control: &Control) -> Result<Output, ApiError>;
+}
+
+/// An encoded output and its format.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Output {
+    pub body: Bytes,
+    pub format: Format,
 }
 
 /// `response` of the execute body: the output alone (`raw`, the default) or `{output: ...}`.
@@ -101,13 +114,28 @@ pub enum ResponseMode {
     Document,
 }
 
+/// The format asked of one output (OGC API - Processes `format`).
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct FormatRequest {
+    #[serde(default, rename = "mediaType")]
+    media_type: Option<String>,
+    /// Accepted and unused: outputs are sent in their media type's own encoding.
+    #[serde(default)]
+    #[allow(dead_code)]
+    encoding: Option<String>,
+    /// Accepted and unused: each output has one schema.
+    #[serde(default)]
+    #[allow(dead_code)]
+    schema: Option<Value>,
+}
+
 /// What the client asks of one output.
 #[derive(Debug, Deserialize)]
 #[serde(deny_unknown_fields)]
 struct OutputRequest {
     #[serde(default)]
-    #[allow(dead_code)] // accepted and ignored: the only format is JSON
-    format: Option<Value>,
+    format: Option<FormatRequest>,
     #[serde(default, rename = "transmissionMode")]
     transmission_mode: Option<String>,
 }
@@ -123,13 +151,20 @@ struct ExecuteBody<I> {
     response: Option<ResponseMode>,
 }
 
-/// Parses an execute body whose inputs are `I`, checking the requested outputs.
+/// Parses an execute body whose inputs are `I`, checking the requested outputs and choosing
+/// the output format among `supported` (the body's `mediaType`, else `accept`, else JSON).
 pub(crate) fn parse_execute<I: serde::de::DeserializeOwned>(
     body: &[u8],
     output: &str,
-) -> Result<(I, ResponseMode), ApiError> {
+    accept: Option<&str>,
+    supported: &[Format],
+) -> Result<(I, ResponseMode, Format), ApiError> {
     let parsed: ExecuteBody<I> = super::body::parse(body)?;
+    let mut requested: Option<(String, String)> = None;
     for (id, req) in parsed.outputs.iter().flatten() {
+        if let Some(media_type) = req.format.as_ref().and_then(|f| f.media_type.clone()) {
+            requested = Some((format!("/outputs/{id}/format/mediaType"), media_type));
+        }
         if id != output {
             return Err(ApiError::InvalidInput {
                 pointer: format!("/outputs/{id}"),
@@ -147,7 +182,22 @@ pub(crate) fn parse_execute<I: serde::de::DeserializeOwned>(
             }
         }
     }
-    Ok((parsed.inputs, parsed.response.unwrap_or_default()))
+    let format = formats::choose(
+        requested.as_ref().map(|(p, m)| (p.as_str(), m.as_str())),
+        accept,
+        supported,
+    )?;
+    let mode = parsed.response.unwrap_or_default();
+    if mode == ResponseMode::Document && format != Format::Json {
+        return Err(ApiError::InvalidInput {
+            pointer: "/response".into(),
+            detail: format!(
+                "a `document` response wraps JSON, but the output is asked as `{}`: drop `response` (or use `raw`) to get the file itself",
+                format.media_type()
+            ),
+        });
+    }
+    Ok((parsed.inputs, mode, format))
 }
 
 /// Refuses a planned cost above the limit; `pointer` names what to send less of.
@@ -174,9 +224,12 @@ pub(crate) fn run_error(e: EngineError) -> ApiError {
 }
 
 /// Encodes an output document as compact JSON.
-pub(crate) fn to_json<T: serde::Serialize>(doc: &T) -> Result<Bytes, ApiError> {
+pub(crate) fn to_json<T: serde::Serialize>(doc: &T) -> Result<Output, ApiError> {
     serde_json::to_vec(doc)
-        .map(Bytes::from)
+        .map(|body| Output {
+            body: Bytes::from(body),
+            format: Format::Json,
+        })
         .map_err(|e| ApiError::Internal {
             cause: format!("cannot encode results: {e}"),
         })

@@ -5,19 +5,23 @@ use bytes::Bytes;
 use serde_json::{json, Value};
 
 use super::{
-    check_cost, input, parse_execute, run_error, schema_of, to_json, Context, Prepared, Process,
-    ResponseMode,
+    check_cost, input, parse_execute, run_error, schema_of, to_json, Context, Output, Prepared,
+    Process, ResponseMode,
 };
 use crate::api::decode::{self, DecodeError, Decoded};
+use crate::api::formats::{self, Format};
 use crate::api::problem::ApiError;
 use crate::api::wire::{
-    EvalRequest, EvidenceSpec, RasterInput, ResultsDocument, SummariesSpec, ZoneSpec,
+    EvalRequest, EvidenceSpec, RasterInput, ResultsDocument, SummariesSpec, ZoneResult, ZonesDoc,
 };
-use crate::engine::{self, Control, EngineError, Plan};
+use crate::engine::{self, Control, EngineError, Plan, ZoneSummary};
 
 pub struct ZoneCounts;
 
 const OUTPUT: &str = "counts";
+
+/// The formats of the `counts` output.
+pub const FORMATS: [Format; 3] = [Format::Json, Format::GeoJson, Format::Csv];
 
 impl Process for ZoneCounts {
     fn id(&self) -> &'static str {
@@ -35,7 +39,7 @@ impl Process for ZoneCounts {
     fn inputs(&self) -> Value {
         json!({
             "raster": input("probability raster", "per-cell event probabilities, inline or as {\"ref\": \"sha256:...\"} from POST /rasters", schema_of::<RasterInput>(), 1),
-            "zones": input("zones", "the cell sets to report on, each by cell list or rectangle", schema_of::<Vec<ZoneSpec>>(), 1),
+            "zones": input("zones", "the zones to report on: a list of zones (cell lists or rectangles), a GeoJSON Feature or FeatureCollection of polygons, or a label raster", schema_of::<ZonesDoc>(), 1),
             "evidence": input("evidence", "the observed total number of events over all valid cells", schema_of::<EvidenceSpec>(), 1),
             "summaries": input("summaries", "what to report: interval level, exceedance thresholds, pmf, tolerance", schema_of::<SummariesSpec>(), 0),
         })
@@ -43,13 +47,19 @@ impl Process for ZoneCounts {
     fn outputs(&self) -> Value {
         json!({OUTPUT: {"title": "zone counts", "description": "the results document: one entry per zone, in request order, and the total check", "schema": schema_of::<ResultsDocument>()}})
     }
+    fn formats(&self) -> &'static [Format] {
+        &FORMATS
+    }
     fn prepare(
         &self,
         body: &[u8],
+        accept: Option<&str>,
         ctx: &Context,
     ) -> Result<(ResponseMode, Box<dyn Prepared>), ApiError> {
-        let (req, mode): (EvalRequest, _) = parse_execute(body, OUTPUT)?;
-        let counts = prepare(req, ctx).map_err(|e| ApiError::from_decode(e, "/inputs"))?;
+        let (req, mode, format): (EvalRequest, _, _) =
+            parse_execute(body, OUTPUT, accept, &FORMATS)?;
+        let mut counts = prepare(req, ctx).map_err(|e| ApiError::from_decode(e, "/inputs"))?;
+        counts.format = format;
         Ok((mode, Box::new(counts)))
     }
 }
@@ -58,14 +68,20 @@ impl Process for ZoneCounts {
 pub struct Counts {
     decoded: Decoded,
     plan: Plan,
+    /// How `run` encodes the results (JSON unless chosen otherwise).
+    pub format: Format,
 }
 
 /// Decodes and plans a request document, refusing it when the planned cost is over the limit.
 pub fn prepare(req: EvalRequest, ctx: &Context) -> Result<Counts, DecodeError> {
     let decoded = decode::zone_counts(req, &ctx.limits, ctx.rasters)?;
-    let plan = engine::plan(&decoded.raster, &decoded.zones);
+    let plan = engine::plan(&decoded.raster, decoded.zones.engine_zones());
     check_cost(plan.estimated_cost, &ctx.limits, "/zones")?;
-    Ok(Counts { decoded, plan })
+    Ok(Counts {
+        decoded,
+        plan,
+        format: Format::Json,
+    })
 }
 
 /// Runs a prepared request: the normaliser (from the context's source), then the union tree.
@@ -78,16 +94,27 @@ pub fn compute(
     let normaliser =
         ctx.normalisers
             .normaliser(d.raster_key.as_deref(), &d.raster, &d.evidence, control)?;
-    let zones = engine::execute(
-        &c.plan,
-        &d.raster,
-        &d.zones,
-        &normaliser,
-        &d.settings,
-        control,
-    )?;
+    let computed = match &d.zones.set {
+        Some(set) => engine::execute(&c.plan, &d.raster, set, &normaliser, &d.settings, control)?,
+        None => Vec::new(),
+    };
+    let mut computed: Vec<Option<ZoneSummary>> = computed.into_iter().map(Some).collect();
+    let zones = d
+        .zones
+        .entries
+        .iter()
+        .map(|entry| {
+            let summary = entry
+                .slot
+                .and_then(|slot| computed.get_mut(slot).and_then(Option::take))
+                .unwrap_or_else(|| ZoneSummary::certain_zero(entry.id.clone(), &d.settings));
+            let mut result = ZoneResult::from(summary);
+            result.nodata_cells = entry.nodata_cells;
+            result
+        })
+        .collect();
     Ok(ResultsDocument {
-        zones: zones.into_iter().map(Into::into).collect(),
+        zones,
         total: normaliser.check.clone().into(),
     })
 }
@@ -99,7 +126,21 @@ impl Prepared for Counts {
     fn cells(&self) -> u64 {
         self.decoded.zones.cell_count()
     }
-    fn run(self: Box<Self>, ctx: &Context, control: &Control) -> Result<Bytes, ApiError> {
-        to_json(&compute(&self, ctx, control).map_err(run_error)?)
+    fn run(self: Box<Self>, ctx: &Context, control: &Control) -> Result<Output, ApiError> {
+        let doc = compute(&self, ctx, control).map_err(run_error)?;
+        encode(&self, &doc)
     }
+}
+
+/// Encodes a results document in the request's format.
+pub fn encode(c: &Counts, doc: &ResultsDocument) -> Result<Output, ApiError> {
+    let body = match c.format {
+        Format::Json | Format::GeoTiff => return to_json(doc),
+        Format::GeoJson => formats::zone_counts_geojson(doc, &c.decoded.zones, &c.decoded.frame)?,
+        Format::Csv => formats::zone_counts_csv(doc)?,
+    };
+    Ok(Output {
+        body: Bytes::from(body),
+        format: c.format,
+    })
 }
