@@ -911,10 +911,12 @@ impl<'a> ZoneBuilder<'a> {
             ));
         }
         let total = cells.len();
-        let valid: Vec<u32> = cells
+        let mut valid: Vec<u32> = cells
             .into_iter()
             .filter(|&c| self.raster.cell_problem(c).is_none())
             .collect();
+        // Zones are held until the job ends: drop the slack of grown or filtered lists.
+        valid.shrink_to_fit();
         let nodata_cells = (total - valid.len()) as u64;
         let slot = if valid.is_empty() {
             None

@@ -20,10 +20,16 @@
 //!   allocator kept from earlier workloads of the run ("RSS at start"); the "engine only" figure
 //!   is reset again after the inputs exist. cells/s is raster cells over ours' total time.
 //!
-//! Must not: write anywhere but the log it is given and /proc/self/clear_refs (the binary prints
-//! the rendered table and writes the JSON file), or read anything but /proc/self/status.
+//! The GIS rows (`gis`) add GeoTIFF reading and polygon rasterising against rasterio, and a
+//! workload through the service's router; see that module for what they measure.
+//!
+//! Must not: write anywhere but the log it is given, /proc/self/clear_refs and the GIS rows'
+//! temporary folder (the binary prints the rendered table and writes the JSON file), read
+//! anything but /proc/self/status and those fixtures, or start any process but the rasterio
+//! script.
 
 pub mod baseline;
+pub mod gis;
 pub mod workload;
 
 use std::io::Write;
@@ -122,39 +128,150 @@ pub struct Target {
 #[derive(Clone, Debug, Serialize)]
 pub struct Report {
     pub rows: Vec<Row>,
+    pub gis: Vec<gis::GisRow>,
     pub targets: Vec<Target>,
+}
+
+/// The workloads a run goes through: engine workloads, then GIS ones.
+#[derive(Clone, Debug, Default)]
+pub struct Selection {
+    pub engine: Vec<&'static Workload>,
+    pub gis: Vec<&'static str>,
+}
+
+impl Selection {
+    pub fn len(&self) -> usize {
+        self.engine.len() + self.gis.len()
+    }
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
 }
 
 /// The workload names and what they hold, one per line.
 pub fn list() -> String {
-    WORKLOADS
+    let engine = WORKLOADS
         .iter()
-        .map(|w| format!("{:<16} {}\n", w.name, w.about))
-        .collect()
+        .map(|w| format!("{:<16} {}\n", w.name, w.about));
+    let geo = gis::GIS_WORKLOADS
+        .iter()
+        .map(|(n, a)| format!("{n:<16} {a}\n"));
+    engine.chain(geo).collect()
 }
 
 /// Resolves `--workload`: one by name, or all of them.
-pub fn select(name: Option<&str>) -> Result<Vec<&'static Workload>, String> {
-    match name {
-        None => Ok(WORKLOADS.iter().collect()),
-        Some(n) => workload::find(n).map(|w| vec![w]).ok_or_else(|| {
-            let names: Vec<&str> = WORKLOADS.iter().map(|w| w.name).collect();
-            format!(
-                "--workload `{n}` is not a workload: use one of {} (see --list)",
-                names.join(", ")
-            )
-        }),
+pub fn select(name: Option<&str>) -> Result<Selection, String> {
+    let Some(n) = name else {
+        return Ok(Selection {
+            engine: WORKLOADS.iter().collect(),
+            gis: gis::GIS_WORKLOADS.iter().map(|(n, _)| *n).collect(),
+        });
+    };
+    if let Some(w) = workload::find(n) {
+        return Ok(Selection {
+            engine: vec![w],
+            gis: Vec::new(),
+        });
     }
+    if let Some(g) = gis::find(n) {
+        return Ok(Selection {
+            engine: Vec::new(),
+            gis: vec![g],
+        });
+    }
+    let names: Vec<&str> = WORKLOADS
+        .iter()
+        .map(|w| w.name)
+        .chain(gis::GIS_WORKLOADS.iter().map(|(n, _)| *n))
+        .collect();
+    Err(format!(
+        "--workload `{n}` is not a workload: use one of {} (see --list)",
+        names.join(", ")
+    ))
 }
 
 /// Runs the workloads in order, writing progress to `log`, and returns the report.
-pub fn run(workloads: &[&Workload], log: &mut dyn Write) -> Result<Report, String> {
+pub fn run(selection: &Selection, log: &mut dyn Write) -> Result<Report, String> {
     let mut rows = Vec::new();
-    for w in workloads {
+    for w in &selection.engine {
         rows.push(run_one(w, log)?);
     }
-    let targets = targets(&rows);
-    Ok(Report { rows, targets })
+    let gis = gis::run(&selection.gis, log)?;
+    let mut targets = targets(&rows);
+    targets.extend(gis_targets(&gis));
+    Ok(Report { rows, gis, targets })
+}
+
+/// The targets of the GIS rows.
+pub fn gis_targets(rows: &[gis::GisRow]) -> Vec<Target> {
+    let get = |name: &str| rows.iter().find(|r| r.workload == name);
+    let mut out = Vec::new();
+    if let Some(r) = get("G-read-5000") {
+        out.push(target(
+            "G-read-5000: t(ours) / t(rasterio)",
+            "<= 1",
+            r.ratio,
+            |x| x <= 1.0,
+        ));
+    }
+    if let Some(r) = get("G-rasterise-10k") {
+        out.push(target(
+            "G-rasterise-10k: t(ours) / t(rasterio)",
+            "<= 1",
+            r.ratio,
+            |x| x <= 1.0,
+        ));
+    }
+    if let Some(r) = get("G-service-W25M") {
+        out.push(target(
+            "G-service-W25M: service wall / engine",
+            "<= 2",
+            r.wall_over_engine,
+            |x| x <= 2.0,
+        ));
+        out.push(target(
+            "G-service-W25M: peak RSS / raster f64 bytes",
+            "<= 3",
+            r.peak_rss_ratio,
+            |x| x <= 3.0,
+        ));
+    }
+    out
+}
+
+/// The GIS rows as lines of text.
+fn render_gis(rows: &[gis::GisRow]) -> String {
+    let mut s = String::from("\nGIS rows\n");
+    for r in rows {
+        s.push_str(&format!("  {}: {}\n", r.workload, r.about));
+        match (r.engine_s, r.rasterio_s) {
+            (Some(e), _) => s.push_str(&format!(
+                "    service wall {}, engine {}, wall / engine {}\n",
+                time(r.ours_s),
+                time(e),
+                opt(r.wall_over_engine, |x| format!("{x:.2}"))
+            )),
+            (None, rasterio) => s.push_str(&format!(
+                "    ours {}, rasterio {}, ours / rasterio {}\n",
+                time(r.ours_s),
+                opt(rasterio, time),
+                opt(r.ratio, |x| format!("{x:.2}"))
+            )),
+        }
+        if let Some(bytes) = r.raster_bytes {
+            s.push_str(&format!(
+                "    raster f64 {}, RSS at start {}, peak RSS {}, peak / raster {}\n",
+                mib(bytes),
+                opt(r.start_rss_bytes.map(|b| b as f64), |b| mib(b as u64)),
+                opt(r.peak_rss_bytes.map(|b| b as f64), |b| mib(b as u64)),
+                opt(r.peak_rss_ratio, |x| format!("{x:.2}x"))
+            ));
+        }
+        for n in &r.notes {
+            s.push_str(&format!("    note: {n}\n"));
+        }
+    }
+    s
 }
 
 fn secs(t: Instant) -> f64 {
@@ -711,6 +828,9 @@ pub fn render(report: &Report) -> String {
             t.name, measured, t.goal
         ));
     }
+    if !report.gis.is_empty() {
+        s.push_str(&render_gis(&report.gis));
+    }
     let notes: Vec<String> = rows
         .iter()
         .flat_map(|r| {
@@ -738,7 +858,11 @@ mod tests {
     fn smoke_workload_runs_and_meets_the_accuracy_contract() {
         let w = workload::find("W10k-partition").unwrap();
         let mut log = Vec::new();
-        let report = run(&[w], &mut log).unwrap();
+        let selection = Selection {
+            engine: vec![w],
+            gis: Vec::new(),
+        };
+        let report = run(&selection, &mut log).unwrap();
         let row = &report.rows[0];
         assert_eq!(row.zones, 100);
         assert_eq!(row.sample, Some(SAMPLE));
@@ -762,9 +886,13 @@ mod tests {
             e.contains("W1-nothing") && e.contains("W250k-overlap"),
             "{e}"
         );
-        assert_eq!(select(None).unwrap().len(), WORKLOADS.len());
         assert_eq!(
-            select(Some("w10k-PARTITION")).unwrap()[0].name,
+            select(None).unwrap().len(),
+            WORKLOADS.len() + gis::GIS_WORKLOADS.len()
+        );
+        assert_eq!(select(Some("g-read-5000")).unwrap().gis, ["G-read-5000"]);
+        assert_eq!(
+            select(Some("w10k-PARTITION")).unwrap().engine[0].name,
             "W10k-partition"
         );
     }

@@ -132,38 +132,16 @@ fn read_checked(bytes: &[u8], limits: &ReadLimits) -> Result<TiffRaster, GeoErro
     let mut tiff_limits = Limits::default();
     tiff_limits.decoding_buffer_size =
         usize::try_from(limits.max_cells.saturating_mul(WIDEST_SAMPLE_BYTES)).unwrap_or(usize::MAX);
-    let mut decoder = decoder.with_limits(tiff_limits);
-
-    // tiff 0.10's LZW reader stops on some tiled streams GDAL writes (with a panic, caught
-    // here): name that case so the fix (re-save with deflate) is clear.
-    let decoded = match catch_unwind(AssertUnwindSafe(|| decoder.read_image())) {
-        Ok(Ok(decoded)) => decoded,
-        Ok(Err(TiffError::IoError(e))) if compression == COMPRESSION_LZW => {
-            return Err(lzw_failure(e.to_string()))
-        }
-        Ok(Err(e)) => return Err(decode_error(e)),
-        Err(_) if compression == COMPRESSION_LZW => {
-            return Err(lzw_failure("the LZW decoder stopped mid-stream".into()))
-        }
-        Err(_) => {
-            return Err(GeoError::TiffDecode {
-                detail: "the decoder met an internal inconsistency".into(),
-                hint: DECODE_HINT,
-            })
-        }
-    };
-    let samples: Vec<f64> = match (decoded, sample_kind) {
-        (DecodingResult::F32(v), SampleKind::F32) => v.into_iter().map(f64::from).collect(),
-        (DecodingResult::F64(v), SampleKind::F64) => v,
-        (DecodingResult::U8(v), SampleKind::U8) => v.into_iter().map(f64::from).collect(),
-        (DecodingResult::U16(v), SampleKind::U16) => v.into_iter().map(f64::from).collect(),
-        _ => {
-            return Err(GeoError::TiffDecode {
-                detail: "the decoded samples do not match the declared sample format".into(),
-                hint: DECODE_HINT,
-            })
-        }
-    };
+    let decoder = decoder.with_limits(tiff_limits.clone());
+    let samples = read_bands(
+        bytes,
+        decoder,
+        &tiff_limits,
+        width,
+        height,
+        sample_kind,
+        compression,
+    )?;
     if samples.len() as u64 != cells {
         return Err(GeoError::TiffDecode {
             detail: format!(
@@ -183,6 +161,133 @@ fn read_checked(bytes: &[u8], limits: &ReadLimits) -> Result<TiffRaster, GeoErro
         samples,
         nodata,
         sample_kind,
+    })
+}
+
+/// Decodes the pixels band by band in parallel: a band is one strip, or one row of tiles, and
+/// so a run of whole image rows. Each worker opens its own decoder on the same bytes and writes
+/// its bands into their rows of the one output buffer.
+fn read_bands(
+    bytes: &[u8],
+    mut decoder: Decoder<Cursor<&[u8]>>,
+    tiff_limits: &Limits,
+    width: u32,
+    height: u32,
+    kind: SampleKind,
+    compression: u16,
+) -> Result<Vec<f64>, GeoError> {
+    use rayon::prelude::*;
+    use tiff::decoder::ChunkType;
+    let chunk_type = decoder.get_chunk_type();
+    let (chunk_w, chunk_h) = decoder.chunk_dimensions();
+    if chunk_w == 0 || chunk_h == 0 {
+        return Err(GeoError::TiffDecode {
+            detail: format!("the image declares {chunk_w}x{chunk_h} chunks"),
+            hint: DECODE_HINT,
+        });
+    }
+    let across = match chunk_type {
+        ChunkType::Strip => 1,
+        ChunkType::Tile => width.div_ceil(chunk_w),
+    };
+    let declared = match chunk_type {
+        ChunkType::Strip => decoder.strip_count(),
+        ChunkType::Tile => decoder.tile_count(),
+    }
+    .map_err(decode_error)?;
+    let bands = height.div_ceil(chunk_h);
+    if u64::from(declared) < u64::from(bands) * u64::from(across) {
+        return Err(GeoError::TiffDecode {
+            detail: format!(
+                "the image has {declared} chunks, fewer than its {width}x{height} cells need"
+            ),
+            hint: DECODE_HINT,
+        });
+    }
+    let band_cells = chunk_h as usize * width as usize;
+    let mut samples = vec![0.0f64; width as usize * height as usize];
+    samples
+        .par_chunks_mut(band_cells)
+        .enumerate()
+        .try_for_each_init(
+            || {
+                Decoder::new(Cursor::new(bytes))
+                    .map(|d| d.with_limits(tiff_limits.clone()))
+                    .map_err(|e| e.to_string())
+            },
+            |decoder, (band, out)| {
+                let decoder = decoder.as_mut().map_err(|e| GeoError::TiffDecode {
+                    detail: e.clone(),
+                    hint: DECODE_HINT,
+                })?;
+                for col in 0..across {
+                    let index = band as u32 * across + col;
+                    let (data_w, data_h) = decoder.chunk_data_dimensions(index);
+                    let chunk = read_chunk(decoder, index, compression)?;
+                    let x0 = (col * chunk_w) as usize;
+                    let (data_w, data_h) = (data_w as usize, data_h as usize);
+                    for r in 0..data_h.min(out.len() / width as usize) {
+                        let row = &mut out[r * width as usize + x0..][..data_w];
+                        place(&chunk, kind, r * data_w, row)?;
+                    }
+                }
+                Ok(())
+            },
+        )?;
+    Ok(samples)
+}
+
+/// One chunk decoded, the LZW reader's known failures named.
+fn read_chunk(
+    decoder: &mut Decoder<Cursor<&[u8]>>,
+    index: u32,
+    compression: u16,
+) -> Result<DecodingResult, GeoError> {
+    // tiff 0.10's LZW reader stops on some tiled streams GDAL writes (with a panic, caught
+    // here): name that case so the fix (re-save with deflate) is clear.
+    match catch_unwind(AssertUnwindSafe(|| decoder.read_chunk(index))) {
+        Ok(Ok(decoded)) => Ok(decoded),
+        Ok(Err(TiffError::IoError(e))) if compression == COMPRESSION_LZW => {
+            Err(lzw_failure(e.to_string()))
+        }
+        Ok(Err(e)) => Err(decode_error(e)),
+        Err(_) if compression == COMPRESSION_LZW => {
+            Err(lzw_failure("the LZW decoder stopped mid-stream".into()))
+        }
+        Err(_) => Err(GeoError::TiffDecode {
+            detail: "the decoder met an internal inconsistency".into(),
+            hint: DECODE_HINT,
+        }),
+    }
+}
+
+/// Copies `row.len()` samples of `chunk` from `at` into `row`, as f64.
+fn place(
+    chunk: &DecodingResult,
+    kind: SampleKind,
+    at: usize,
+    row: &mut [f64],
+) -> Result<(), GeoError> {
+    fn copy<T: Copy + Into<f64>>(src: &[T], at: usize, row: &mut [f64]) -> Option<()> {
+        let src = src.get(at..at + row.len())?;
+        row.iter_mut().zip(src).for_each(|(d, &s)| *d = s.into());
+        Some(())
+    }
+    let done = match (chunk, kind) {
+        (DecodingResult::F32(v), SampleKind::F32) => copy(v, at, row),
+        (DecodingResult::F64(v), SampleKind::F64) => copy(v, at, row),
+        (DecodingResult::U8(v), SampleKind::U8) => copy(v, at, row),
+        (DecodingResult::U16(v), SampleKind::U16) => copy(v, at, row),
+        _ => {
+            return Err(GeoError::TiffDecode {
+                detail: "the decoded samples do not match the declared sample format".into(),
+                hint: DECODE_HINT,
+            })
+        }
+    };
+    done.ok_or_else(|| GeoError::TiffDecode {
+        detail: "a chunk decoded to fewer samples than it declares".into(),
+        hint: DECODE_HINT,
     })
 }
 
