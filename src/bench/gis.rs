@@ -255,7 +255,7 @@ fn read_row(dir: &Path) -> Result<GisRow, String> {
         }
         Ok(())
     })?;
-    let mut notes = vec![format!(
+    let notes = vec![format!(
         "{} MiB on disk, striped as the tiff crate writes it; ours decodes strips in parallel on {} threads, rasterio with GDAL's defaults",
         bytes.len() >> 20,
         rayon::current_num_threads()
@@ -309,7 +309,7 @@ fn rasterise_row(dir: &Path) -> Result<GisRow, String> {
     });
     std::fs::write(&path, doc.to_string())
         .map_err(|e| format!("cannot write {}: {e}", path.display()))?;
-    let mut notes = vec![format!(
+    let notes = vec![format!(
         "{} polygons, {cells} cells burned (cell-centre rule)",
         polygons.len()
     )];
