@@ -232,6 +232,65 @@ async fn inline_and_linked_geotiffs_decode_to_the_uploaded_raster() {
     std::fs::remove_dir_all(dir).ok();
 }
 
+/// A u8 GeoTIFF of the tea grid (no georeferencing), written with the tiff crate.
+fn u8_tiff(values: &[u8]) -> Vec<u8> {
+    use tiff::encoder::{colortype, TiffEncoder};
+    let mut out = Cursor::new(Vec::new());
+    TiffEncoder::new(&mut out)
+        .unwrap()
+        .write_image::<colortype::Gray8>(4, 2, values)
+        .unwrap();
+    out.into_inner()
+}
+
+#[tokio::test]
+async fn integer_rasters_need_a_scale_and_compact_values_decode_exactly() {
+    let (_, router) = state_with(config());
+    let percent = u8_tiff(&[50; 8]);
+    let refused = post_tiff(&router, "/rasters", percent.clone()).await;
+    let (status, kind, _) = problem_of(&refused);
+    assert_eq!((status, kind.as_str()), (422, "/problems/unusable-content"));
+    let detail = refused.json()["detail"].as_str().unwrap().to_string();
+    assert!(
+        detail.contains("row 0, column 0") && detail.contains("`scale`"),
+        "{detail}"
+    );
+    let scaled = post_tiff(&router, "/rasters?scale=0.01", percent).await;
+    assert_eq!(scaled.status, StatusCode::CREATED, "{:?}", scaled.body);
+    let reference = scaled.json()["ref"].as_str().unwrap().to_string();
+    // reference: IEEE 754 binary64 arithmetic, checked in CPython: 50 * 0.01 == 0.5 exactly,
+    // so the scaled raster is the tea example's.
+    let mut by_link = json!({"inputs": tea_inputs()});
+    by_link["inputs"]["raster"] = json!({"href": format!("/rasters/{reference}")});
+    let linked = post_json(&router, ZC, &by_link, None).await;
+    assert_eq!(linked.status, StatusCode::OK, "{:?}", linked.body);
+    let plain = post_json(&router, ZC, &json!({"inputs": tea_inputs()}), None).await;
+    assert_eq!(linked.json()["zones"], plain.json()["zones"]);
+
+    // values_base64: little-endian float64 (default) and float32, equal to the JSON values.
+    let f32s: Vec<u8> = [0.5f32; 8].iter().flat_map(|v| v.to_le_bytes()).collect();
+    let f64s: Vec<u8> = [0.5f64; 8].iter().flat_map(|v| v.to_le_bytes()).collect();
+    let b64 = |b: &[u8]| base64::engine::general_purpose::STANDARD.encode(b);
+    for raster in [
+        json!({"width": 4, "height": 2, "values_base64": b64(&f64s)}),
+        json!({"width": 4, "height": 2, "values_base64": b64(&f32s), "sample_type": "float32"}),
+        json!({"width": 4, "height": 2, "values": [50, 50, 50, 50, 50, 50, 50, 50], "scale": 0.01}),
+    ] {
+        let mut body = json!({"inputs": tea_inputs()});
+        body["inputs"]["raster"] = raster.clone();
+        let r = post_json(&router, ZC, &body, None).await;
+        assert_eq!(r.status, StatusCode::OK, "{raster}: {:?}", r.body);
+        assert_eq!(r.json()["zones"], plain.json()["zones"], "{raster}");
+    }
+    let mut short = json!({"inputs": tea_inputs()});
+    short["inputs"]["raster"] = json!({"width": 4, "height": 2, "values_base64": b64(&f64s[..56])});
+    let (status, _, pointer) = problem_of(&post_json(&router, ZC, &short, None).await);
+    assert_eq!(
+        (status, pointer.as_str()),
+        (400, "/inputs/raster/values_base64")
+    );
+}
+
 #[tokio::test]
 async fn zones_on_nodata_are_answered_not_refused() {
     let (_, router) = state_with(config());
@@ -298,12 +357,25 @@ async fn label_rasters_and_polygons_outside_the_raster_make_zones() {
         {"type": "Feature", "id": "far", "properties": {}, "geometry": {"type": "Polygon",
             "coordinates": [[[50.0, 50.0], [51.0, 50.0], [51.0, 51.0], [50.0, 50.0]]]}}
     ]});
-    let r = post_json(&router, ZC, &json!({"inputs": inputs}), None).await;
+    let r = post_json(&router, ZC, &json!({"inputs": inputs.clone()}), None).await;
     assert_eq!(r.status, StatusCode::OK, "{:?}", r.body);
     let doc = r.json();
     assert_eq!(doc["zones"][0]["id"], "7");
     assert_eq!(doc["zones"][0]["cells"], 4);
     assert_eq!(doc["zones"][1]["no_valid_cells"], true);
+    // Ids from a property the request names.
+    inputs["zones"]["features"][0]["properties"] = json!({"name": "west"});
+    inputs["zones"]["features"][1]["properties"] = json!({"name": "beyond"});
+    inputs["zone_options"] = json!({"id_property": "name"});
+    let r = post_json(&router, ZC, &json!({"inputs": inputs}), None).await;
+    assert_eq!(r.status, StatusCode::OK, "{:?}", r.body);
+    let ids: Vec<Value> = r.json()["zones"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|z| z["id"].clone())
+        .collect();
+    assert_eq!(ids, [json!("west"), json!("beyond")]);
 }
 
 #[tokio::test]

@@ -10,7 +10,9 @@ cell-posterior for a GeoTIFF, and checks:
   - the CSV loads with the csv module, one row per zone, numbers equal to the JSON results;
   - the GeoTIFF opens with rasterio: same size, transform, CRS and nodata as the input, band 1
     the JSON posterior and band 2 the prior of every cell;
-  - `zonetally eval --raster ... --zones ... --format geojson` gives the service's GeoJSON.
+  - `zonetally eval --raster ... --zones ... --format geojson` gives the service's GeoJSON;
+  - malformed files (a truncated GeoTIFF, one declaring 10^12 pixels, a GeoJSON ring of 10^7
+    positions) each get a specific 4xx, and the server still serves.
 
     pip install rasterio shapely
     python3 tests/reference/geo/check_outputs.py --bin target/release/zonetally
@@ -25,10 +27,12 @@ import json
 import math
 import os
 import socket
+import struct
 import subprocess
 import sys
 import tempfile
 import time
+import urllib.error
 import urllib.request
 
 import numpy as np
@@ -72,6 +76,43 @@ def call(url, body=None, content_type="application/json", accept=None):
         return resp.headers.get("Content-Type"), resp.read()
 
 
+def status_of(url, body, content_type):
+    """The HTTP status and problem document of a request expected to fail."""
+    try:
+        call(url, body, content_type)
+        return 200, {}
+    except urllib.error.HTTPError as e:
+        return e.code, json.loads(e.read() or b"{}")
+
+
+def claiming_tiff(width, height):
+    """A little-endian TIFF header declaring width x height float32 pixels and holding none."""
+    entries = [(256, 4, 1, width), (257, 4, 1, height), (258, 3, 1, 32), (259, 3, 1, 1), (262, 3, 1, 1),
+               (273, 4, 1, 200), (277, 3, 1, 1), (279, 4, 1, 4), (339, 3, 1, 3)]
+    out = b"II*\0" + struct.pack("<I", 8) + struct.pack("<H", len(entries))
+    for tag, kind, count, value in entries:
+        out += struct.pack("<HHII", tag, kind, count, value)
+    return (out + struct.pack("<I", 0)).ljust(204, b"\0")
+
+
+def malformed(base, tif_bytes, t):
+    """Malformed files over a real socket: each a specific 4xx, and the server keeps serving."""
+    code, p = status_of(base + "/rasters", tif_bytes[: len(tif_bytes) // 2], "image/tiff")
+    t.check(400 <= code < 500 and p.get("type", "").startswith("/problems/"), f"truncated GeoTIFF: {code} {p}")
+    code, p = status_of(base + "/rasters", claiming_tiff(1_000_000, 1_000_000), "image/tiff")
+    t.check(code == 413 and "cells" in p.get("detail", ""), f"10^12-pixel GeoTIFF: {code} {p}")
+    # A ring of 10^7 positions, written compactly so the body stays under the body limit.
+    ring = "[" + ",".join(["[0,0]", "[1,0]", "[1,1]"] * 3_333_333) + ",[0,0]]"
+    zones = '{"type":"Feature","id":"huge","properties":{},"geometry":{"type":"Polygon","coordinates":[' + ring + "]}}"
+    body = ('{"inputs":{"raster":{"width":2,"height":2,"values":[0.5,0.5,0.5,0.5],"geotransform":[0,1,0,2,0,-1]},'
+            '"zones":' + zones + ',"evidence":{"total":1}}}').encode()
+    code, p = status_of(base + "/processes/zone-counts/execution", body, "application/json")
+    t.check(code == 413 and "vert" in p.get("detail", "") + p.get("title", ""),
+            f"10^7-vertex ring ({len(body) >> 20} MiB): {code} {p}")
+    _, health = call(base + "/healthz")
+    t.check(bool(health), "the server still serves /healthz")
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--bin", default=os.path.join(ROOT, "target", "release", "zonetally"))
@@ -90,6 +131,7 @@ def main():
                 time.sleep(0.05)
         with open(TIF, "rb") as f:
             tif_bytes = f.read()
+        malformed(base, tif_bytes, t)
         _, posted = call(base + "/rasters", tif_bytes, "image/tiff; application=geotiff")
         info = json.loads(posted)
         with rasterio.open(TIF) as src:
