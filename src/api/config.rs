@@ -23,6 +23,22 @@ pub struct Config {
     /// Seconds a finished job (and its results) is kept.
     #[arg(long, env = "ZONETALLY_JOB_TTL", default_value_t = 3600.0)]
     pub job_ttl: f64,
+    /// Seconds an async job may run before it is cancelled and ends failed (0: no limit).
+    #[arg(long, env = "ZONETALLY_JOB_TIMEOUT", default_value_t = 3600.0)]
+    pub job_timeout: f64,
+    /// Most jobs held at once, finished ones included; submissions beyond get 503.
+    #[arg(long, env = "ZONETALLY_MAX_JOBS", default_value_t = 10_000)]
+    pub max_jobs: usize,
+    /// Most bytes held by job records and their results; submissions beyond get 503.
+    #[arg(long, env = "ZONETALLY_MAX_JOB_BYTES", default_value_t = 1 << 30)]
+    pub max_job_bytes: u64,
+    /// Most exceedance probabilities one request may ask for: zones x thresholds.
+    #[arg(
+        long,
+        env = "ZONETALLY_MAX_EXCEEDANCE_VALUES",
+        default_value_t = 10_000_000
+    )]
+    pub max_exceedance_values: u64,
     /// Bytes of rasters kept for reuse and for `{"ref": ...}`.
     #[arg(long, env = "ZONETALLY_RASTER_CACHE_BYTES", default_value_t = 1 << 30)]
     pub raster_cache_bytes: u64,
@@ -104,6 +120,10 @@ impl Default for Config {
             threads: 0,
             queue: 64,
             job_ttl: 3600.0,
+            job_timeout: 3600.0,
+            max_jobs: 10_000,
+            max_job_bytes: 1 << 30,
+            max_exceedance_values: 10_000_000,
             raster_cache_bytes: 1 << 30,
             normaliser_cache_bytes: 256 << 20,
             max_body_bytes: 64 << 20,
@@ -137,6 +157,16 @@ impl Config {
             max_zone_cells: self.max_zone_cells,
             max_cost: self.max_cost,
             max_vertices: self.max_vertices,
+            max_exceedance_values: self.max_exceedance_values,
+        }
+    }
+    /// What the job manager holds jobs to.
+    pub fn job_limits(&self) -> crate::jobs::JobLimits {
+        crate::jobs::JobLimits {
+            ttl: self.job_ttl(),
+            timeout: (self.job_timeout > 0.0).then(|| secs(self.job_timeout)),
+            max_held: self.max_jobs,
+            max_held_bytes: self.max_job_bytes,
         }
     }
     pub fn job_ttl(&self) -> Duration {

@@ -35,6 +35,8 @@ pub struct Limits {
     pub max_cost: f64,
     /// Most polygon positions over all GeoJSON zones of a request.
     pub max_vertices: u64,
+    /// Most exceedance probabilities of a request: zones x thresholds.
+    pub max_exceedance_values: u64,
 }
 
 impl Limits {
@@ -54,6 +56,7 @@ impl Default for Limits {
             max_zone_cells: 400_000_000,
             max_cost: f64::INFINITY,
             max_vertices: 100_000_000,
+            max_exceedance_values: u64::MAX,
         }
     }
 }
@@ -275,6 +278,18 @@ pub fn zone_counts(
     let (raster_key, held) = raster_input(req.raster, limits, rasters)?;
     let options = req.zone_options.unwrap_or_default();
     let zones = zones(&req.zones, &options, &held, limits, rasters)?;
+    let asked = settings.thresholds().len() as u64 * zones.entries.len() as u64;
+    if asked > limits.max_exceedance_values {
+        return Err(DecodeError::limit(
+            "/summaries/exceedance",
+            format!(
+                "{} thresholds for {} zones ask for {asked} exceedance probabilities, above this service's limit of {}: send fewer thresholds or fewer zones per request",
+                settings.thresholds().len(),
+                zones.entries.len(),
+                limits.max_exceedance_values
+            ),
+        ));
+    }
     let evidence = evidence(req.evidence, &held.raster)?;
     Ok(Decoded {
         raster_key,

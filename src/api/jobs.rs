@@ -102,15 +102,15 @@ fn number(
     pairs: &[(String, String)],
     name: &str,
     default: usize,
-    max: usize,
+    (min, max): (usize, usize),
 ) -> Result<usize, ApiError> {
     match values(pairs, name).last() {
         None => Ok(default),
         Some(v) => match v.parse::<usize>() {
-            Ok(n) if n <= max => Ok(n),
+            Ok(n) if (min..=max).contains(&n) => Ok(n),
             _ => Err(ApiError::BadQuery {
                 parameter: name.into(),
-                detail: format!("`{v}` is not a whole number from 0 to {max}"),
+                detail: format!("`{v}` is not a whole number from {min} to {max}"),
             }),
         },
     }
@@ -157,8 +157,8 @@ pub async fn jobs(
             });
         }
     }
-    let limit = number(&pairs, "limit", DEFAULT_PAGE, MAX_PAGE)?.max(1);
-    let offset = number(&pairs, "offset", 0, usize::MAX)?;
+    let limit = number(&pairs, "limit", DEFAULT_PAGE, (1, MAX_PAGE))?;
+    let offset = number(&pairs, "offset", 0, (0, usize::MAX))?;
     let (page, matched) = state.jobs().list(&filter, offset, limit);
     let keep: Vec<String> = pairs
         .iter()

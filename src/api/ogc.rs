@@ -25,7 +25,7 @@ use super::problem::{ApiError, Problem};
 use super::processes::{Output, Prepared, Process, ResponseMode};
 use super::state::AppState;
 use crate::engine::Control;
-use crate::jobs::{CancelOnDrop, Results, WorkError};
+use crate::jobs::{CancelOnDrop, Results, SubmitRefused, WorkError};
 
 const CONF: &str = "http://www.opengis.net/spec/ogcapi-processes-1/1.0/conf";
 
@@ -326,8 +326,22 @@ fn start_job(
     let job = state
         .jobs()
         .submit(process.id(), None, work)
-        .map_err(|_| ApiError::Busy {
-            retry_after: state.config().retry_after,
+        .map_err(|refused| {
+            let retry_after = state.config().retry_after;
+            match refused {
+                SubmitRefused::QueueFull => ApiError::Busy { retry_after },
+                SubmitRefused::StoreFull {
+                    held,
+                    bytes,
+                    max_held,
+                    max_bytes,
+                } => ApiError::JobsFull {
+                    detail: format!(
+                        "this service holds {held} jobs in {bytes} bytes, at its limit of {max_held} jobs or {max_bytes} bytes (--max-jobs, --max-job-bytes): fetch or dismiss finished jobs, or retry when they expire"
+                    ),
+                    retry_after,
+                },
+            }
         })?;
     let mut resp = (StatusCode::CREATED, Json(status_info(&job))).into_response();
     let h = resp.headers_mut();

@@ -103,6 +103,15 @@ pub enum ApiError {
         seconds: f64,
     },
     ShuttingDown,
+    /// An async job ran past `--job-timeout`.
+    JobTimeout {
+        seconds: f64,
+    },
+    /// The job store holds as many jobs or bytes as it may.
+    JobsFull {
+        detail: String,
+        retry_after: u64,
+    },
     /// The computation was cancelled (dismissed, client gone, timed out, shutdown).
     Cancelled,
     /// Anything else: the detail stays generic, the cause is logged.
@@ -129,7 +138,8 @@ impl ApiError {
             MethodNotAllowed => StatusCode::METHOD_NOT_ALLOWED,
             NotAcceptable { .. } => StatusCode::NOT_ACCEPTABLE,
             Busy { .. } | ShuttingDown | Cancelled => StatusCode::SERVICE_UNAVAILABLE,
-            Timeout { .. } => StatusCode::GATEWAY_TIMEOUT,
+            Timeout { .. } | JobTimeout { .. } => StatusCode::GATEWAY_TIMEOUT,
+            JobsFull { .. } => StatusCode::SERVICE_UNAVAILABLE,
             Internal { .. } => StatusCode::INTERNAL_SERVER_ERROR,
         }
     }
@@ -204,6 +214,18 @@ impl ApiError {
                 None,
             ),
             BadQuery { parameter, detail } => (own("bad-query"), "bad query parameter", format!("parameter `{parameter}`: {detail}"), None),
+            JobTimeout { seconds } => (
+                own("job-timeout"),
+                "job timed out",
+                format!("the job ran past this service's limit of {seconds} s for one job and was stopped: split the area or send fewer zones per job"),
+                None,
+            ),
+            JobsFull { detail, .. } => (
+                own("jobs-full"),
+                "job store full",
+                detail.clone(),
+                None,
+            ),
             Busy { retry_after } => (
                 own("busy"),
                 "compute queue full",
@@ -293,6 +315,9 @@ impl Failures for JobFailures {
                 cause: "the computation panicked".into(),
             },
             Ending::ShutDown => ApiError::ShuttingDown,
+            Ending::TimedOut(limit) => ApiError::JobTimeout {
+                seconds: limit.as_secs_f64(),
+            },
         }
         .to_failure()
     }
@@ -323,7 +348,7 @@ impl IntoResponse for ApiError {
         )
             .into_response();
         match &self {
-            ApiError::Busy { retry_after } => {
+            ApiError::Busy { retry_after } | ApiError::JobsFull { retry_after, .. } => {
                 resp.headers_mut()
                     .insert(header::RETRY_AFTER, HeaderValue::from(*retry_after));
             }

@@ -32,7 +32,7 @@ impl AppState {
     /// The embedded set-up: an in-memory job store.
     pub fn new(config: Config) -> Result<AppState, String> {
         let pool = Pool::new(config.threads, config.queue)?;
-        let jobs = Jobs::in_memory(pool, Arc::new(JobFailures), config.job_ttl());
+        let jobs = Jobs::in_memory(pool, Arc::new(JobFailures), config.job_limits());
         let caches = Caches::new(config.raster_cache_bytes, config.normaliser_cache_bytes)
             .with_data_dir(config.data_dir.clone());
         Ok(AppState {

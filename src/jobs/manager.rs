@@ -24,9 +24,57 @@ use crate::engine::Control;
 /// enough that a dismissed job stops within a tenth of a second, rarely enough to cost nothing.
 const WATCH_EVERY: Duration = Duration::from_millis(100);
 
+/// What the manager holds jobs to: how long one may run, and how many (and how many bytes of
+/// records and results) the store may hold before new submissions are refused.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct JobLimits {
+    /// Finished jobs are kept this long.
+    pub ttl: Duration,
+    /// A job running longer is cancelled and ends failed; `None`: no limit.
+    pub timeout: Option<Duration>,
+    /// Most records held, finished ones included.
+    pub max_held: usize,
+    /// Most bytes held by records and their results.
+    pub max_held_bytes: u64,
+}
+
+impl JobLimits {
+    /// Only a time to live: no timeout, no caps (tests and embedded uses).
+    pub fn ttl(ttl: Duration) -> JobLimits {
+        JobLimits {
+            ttl,
+            timeout: None,
+            max_held: usize::MAX,
+            max_held_bytes: u64::MAX,
+        }
+    }
+}
+
+/// Why a submission was refused (nothing was stored).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum SubmitRefused {
+    /// Every compute permit is taken.
+    QueueFull,
+    /// The store holds as many jobs, or as many bytes, as it may.
+    StoreFull {
+        held: usize,
+        bytes: u64,
+        max_held: usize,
+        max_bytes: u64,
+    },
+}
+
+impl From<QueueFull> for SubmitRefused {
+    fn from(_: QueueFull) -> Self {
+        SubmitRefused::QueueFull
+    }
+}
+
 /// Endings the manager decides itself, for which the caller supplies the encoded failure.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub enum Ending {
+    /// The job ran past the timeout and was cancelled.
+    TimedOut(Duration),
     /// The computation stopped on cancellation without having been dismissed.
     Cancelled,
     /// The computation panicked (already logged by the runner).
@@ -61,7 +109,7 @@ struct Inner {
     store: Arc<dyn JobStore>,
     pool: Pool,
     failures: Arc<dyn Failures>,
-    ttl: Duration,
+    limits: JobLimits,
     /// Computations of jobs submitted here and not yet ended, by job id.
     live: Mutex<HashMap<String, Arc<Control>>>,
 }
@@ -77,9 +125,10 @@ impl Inner {
         &self,
         id: &str,
         finished: Result<Finished<Result<Results, WorkError>>, oneshot::error::RecvError>,
+        timed_out: Option<Duration>,
     ) {
         let now = SystemTime::now();
-        let ttl = self.ttl;
+        let ttl = self.limits.ttl;
         let failure = match finished {
             Ok(Finished::Done(Ok(results))) => {
                 let mut results = Some(results);
@@ -93,7 +142,10 @@ impl Inner {
             }
             Ok(Finished::Done(Err(WorkError::Failed(f)))) => Some(f),
             Ok(Finished::Done(Err(WorkError::Cancelled))) | Ok(Finished::Cancelled) => {
-                Some(self.failures.failure(Ending::Cancelled))
+                Some(self.failures.failure(match timed_out {
+                    Some(limit) => Ending::TimedOut(limit),
+                    None => Ending::Cancelled,
+                }))
             }
             Ok(Finished::Panicked(_)) | Err(_) => Some(self.failures.failure(Ending::Panicked)),
         };
@@ -108,41 +160,47 @@ impl Inner {
         self.live().remove(id);
     }
 
-    /// Copies progress in and the cancellation flag out; false once the job is gone.
-    fn watch(&self, id: &str, control: &Control) {
+    /// Copies progress in and the cancellation flag out; returns whether the job runs.
+    fn watch(&self, id: &str, control: &Control) -> bool {
         let percent = (control.progress() * 100.0).floor().clamp(0.0, 99.0) as u8;
         let now = SystemTime::now();
         let seen = self.store.update(id, &mut |j| {
             j.report_progress(percent, now);
         });
-        if seen.is_none_or(|j| j.cancel_requested()) {
+        if seen.as_ref().is_none_or(|j| j.cancel_requested()) {
             control.cancel();
         }
+        seen.is_some_and(|j| j.state() == JobState::Running)
     }
 }
 
 impl Jobs {
-    /// A manager over `store`, running work on `pool`, keeping finished jobs for `ttl`.
+    /// A manager over `store`, running work on `pool`, holding jobs to `limits`.
     pub fn new(
         store: Arc<dyn JobStore>,
         pool: Pool,
         failures: Arc<dyn Failures>,
-        ttl: Duration,
+        limits: JobLimits,
     ) -> Jobs {
         Jobs {
             inner: Arc::new(Inner {
                 store,
                 pool,
                 failures,
-                ttl,
+                limits,
                 live: Mutex::new(HashMap::new()),
             }),
         }
     }
 
     /// A manager over a fresh in-memory store (the embedded set-up).
-    pub fn in_memory(pool: Pool, failures: Arc<dyn Failures>, ttl: Duration) -> Jobs {
-        Jobs::new(Arc::new(super::MemoryStore::new()), pool, failures, ttl)
+    pub fn in_memory(pool: Pool, failures: Arc<dyn Failures>, limits: JobLimits) -> Jobs {
+        Jobs::new(Arc::new(super::MemoryStore::new()), pool, failures, limits)
+    }
+
+    /// Bytes the store holds in records and results.
+    pub fn held_bytes(&self) -> u64 {
+        self.inner.store.held_bytes()
     }
 
     pub fn pool(&self) -> &Pool {
@@ -150,14 +208,27 @@ impl Jobs {
     }
 
     /// Stores a new accepted job for `process` and queues `work`; the record as accepted, or
-    /// `QueueFull` (and nothing stored) when every permit is taken. Must be called inside the
-    /// async runtime (the job's watcher is a task).
+    /// why not (and nothing stored): every permit taken, or the store at its count or byte cap.
+    /// Must be called inside the async runtime (the job's watcher is a task).
     pub fn submit(
         &self,
         process: &str,
         owner: Option<String>,
         work: Work,
-    ) -> Result<JobRecord, QueueFull> {
+    ) -> Result<JobRecord, SubmitRefused> {
+        let limits = self.inner.limits;
+        let (held, bytes) = (
+            self.inner.store.counts().total(),
+            self.inner.store.held_bytes(),
+        );
+        if held >= limits.max_held || bytes >= limits.max_held_bytes {
+            return Err(SubmitRefused::StoreFull {
+                held,
+                bytes,
+                max_held: limits.max_held,
+                max_bytes: limits.max_held_bytes,
+            });
+        }
         let id = uuid::Uuid::new_v4().to_string();
         let record = JobRecord::accept(id.clone(), process.to_string(), owner, SystemTime::now());
         self.inner.store.insert(record.clone());
@@ -181,7 +252,7 @@ impl Jobs {
             Err(full) => {
                 self.inner.live().remove(&id);
                 self.inner.store.remove(&id);
-                return Err(full);
+                return Err(full.into());
             }
         };
         let inner = self.inner.clone();
@@ -189,13 +260,26 @@ impl Jobs {
             let mut rx = rx;
             let mut tick = tokio::time::interval(WATCH_EVERY);
             tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
+            // When the watcher first saw the job running, and whether it cut it off.
+            let mut started: Option<std::time::Instant> = None;
+            let mut timed_out = None;
             loop {
                 tokio::select! {
                     finished = &mut rx => {
-                        inner.end(&id, finished);
+                        inner.end(&id, finished, timed_out);
                         break;
                     }
-                    _ = tick.tick() => inner.watch(&id, &control),
+                    _ = tick.tick() => {
+                        if inner.watch(&id, &control) {
+                            let since = *started.get_or_insert_with(std::time::Instant::now);
+                            if let Some(limit) = inner.limits.timeout {
+                                if timed_out.is_none() && since.elapsed() >= limit {
+                                    timed_out = Some(limit);
+                                    control.cancel();
+                                }
+                            }
+                        }
+                    }
                 }
             }
         });
@@ -218,7 +302,7 @@ impl Jobs {
         let now = SystemTime::now();
         let mut applied = false;
         let record = self.inner.store.update(id, &mut |j| {
-            applied = j.dismiss(now, self.inner.ttl).is_ok();
+            applied = j.dismiss(now, self.inner.limits.ttl).is_ok();
         })?;
         if let Some(control) = self.inner.live().get(id) {
             control.cancel();
@@ -274,10 +358,96 @@ impl Jobs {
             let mut f = Some(failure);
             self.inner.store.update(&id, &mut |j| {
                 if let Some(f) = f.take() {
-                    failed += usize::from(j.fail(f, now, self.inner.ttl).is_ok());
+                    failed += usize::from(j.fail(f, now, self.inner.limits.ttl).is_ok());
                 }
             });
         }
         failed
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use bytes::Bytes;
+
+    /// Failures as plain messages naming the ending.
+    struct Named;
+
+    impl Failures for Named {
+        fn failure(&self, ending: Ending) -> Failure {
+            Failure {
+                message: format!("{ending:?}"),
+                status: 500,
+                body: Bytes::new(),
+            }
+        }
+    }
+
+    async fn finished(jobs: &Jobs, id: &str) -> JobRecord {
+        for _ in 0..500 {
+            let j = jobs.record(id).unwrap();
+            if j.state().is_finished() {
+                return j;
+            }
+            tokio::time::sleep(Duration::from_millis(10)).await;
+        }
+        panic!("job {id} did not finish");
+    }
+
+    #[tokio::test]
+    async fn a_job_running_past_the_timeout_is_cancelled_and_fails_as_timed_out() {
+        let limit = Duration::from_millis(50);
+        let jobs = Jobs::in_memory(
+            Pool::new(1, 4).unwrap(),
+            Arc::new(Named),
+            JobLimits {
+                timeout: Some(limit),
+                ..JobLimits::ttl(Duration::from_secs(60))
+            },
+        );
+        // Runs until cancelled, however long that takes.
+        let work: Work = Box::new(|c: &Control| {
+            while !c.is_cancelled() {
+                std::thread::sleep(Duration::from_millis(1));
+            }
+            Err(WorkError::Cancelled)
+        });
+        let job = jobs.submit("p", None, work).unwrap();
+        let done = finished(&jobs, job.id()).await;
+        assert_eq!(done.state(), JobState::Failed);
+        assert_eq!(done.message(), format!("{:?}", Ending::TimedOut(limit)));
+        // A job that ends in time is untouched.
+        let quick: Work = Box::new(|_: &Control| Ok(Results::json(Bytes::from_static(b"{}"))));
+        let job = jobs.submit("p", None, quick).unwrap();
+        assert_eq!(
+            finished(&jobs, job.id()).await.state(),
+            JobState::Successful
+        );
+    }
+
+    #[tokio::test]
+    async fn submissions_past_the_held_caps_are_refused_and_nothing_is_stored() {
+        let jobs = Jobs::in_memory(
+            Pool::new(1, 4).unwrap(),
+            Arc::new(Named),
+            JobLimits {
+                max_held: 1,
+                ..JobLimits::ttl(Duration::from_secs(60))
+            },
+        );
+        let quick = || -> Work { Box::new(|_: &Control| Ok(Results::json(Bytes::new()))) };
+        let first = jobs.submit("p", None, quick()).unwrap();
+        finished(&jobs, first.id()).await;
+        let refused = jobs.submit("p", None, quick()).unwrap_err();
+        assert!(matches!(
+            refused,
+            SubmitRefused::StoreFull {
+                held: 1,
+                max_held: 1,
+                ..
+            }
+        ));
+        assert_eq!(jobs.counts().total(), 1);
     }
 }

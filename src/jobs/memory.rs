@@ -1,9 +1,12 @@
 //! The in-memory job store: the default, lost on restart.
 //!
-//! One map under one lock; counts per state are kept up to date on every change, so metrics
-//! never walk the map.
+//! One map under one lock, plus an index of ids newest first, so a listing walks the index in
+//! order (no sort, no copy of what it skips) and a page costs what it holds; counts per state
+//! and the bytes held are kept up to date on every change, so metrics and admission never walk
+//! the map.
 
-use std::collections::HashMap;
+use std::cmp::Reverse;
+use std::collections::{BTreeSet, HashMap};
 use std::sync::Mutex;
 use std::time::SystemTime;
 
@@ -15,16 +18,23 @@ pub struct MemoryStore {
     inner: Mutex<Inner>,
 }
 
+/// Newest first, ties by id.
+type Order = (Reverse<SystemTime>, String);
+
 #[derive(Default)]
 struct Inner {
     jobs: HashMap<String, JobRecord>,
+    order: BTreeSet<Order>,
     counts: JobCounts,
+    bytes: u64,
 }
 
 impl Inner {
     fn forget(&mut self, id: &str) -> Option<JobRecord> {
         let job = self.jobs.remove(id)?;
         self.counts.remove(job.state());
+        self.order.remove(&(Reverse(job.created()), id.to_string()));
+        self.bytes = self.bytes.saturating_sub(job.heap_bytes() as u64);
         Some(job)
     }
 }
@@ -44,10 +54,13 @@ impl MemoryStore {
 impl JobStore for MemoryStore {
     fn insert(&self, job: JobRecord) {
         let mut inner = self.lock();
+        inner.forget(job.id());
         inner.counts.add(job.state());
-        if let Some(old) = inner.jobs.insert(job.id().to_string(), job) {
-            inner.counts.remove(old.state());
-        }
+        inner.bytes += job.heap_bytes() as u64;
+        inner
+            .order
+            .insert((Reverse(job.created()), job.id().to_string()));
+        inner.jobs.insert(job.id().to_string(), job);
     }
 
     fn get(&self, id: &str) -> Option<JobRecord> {
@@ -66,11 +79,12 @@ impl JobStore for MemoryStore {
     fn update(&self, id: &str, change: &mut dyn FnMut(&mut JobRecord)) -> Option<JobRecord> {
         let mut inner = self.lock();
         let job = inner.jobs.get_mut(id)?;
-        let before = job.state();
+        let (before, size) = (job.state(), job.heap_bytes() as u64);
         change(job);
-        let (after, copy) = (job.state(), job.clone());
+        let (after, grown, copy) = (job.state(), job.heap_bytes() as u64, job.clone());
         inner.counts.remove(before);
         inner.counts.add(after);
+        inner.bytes = inner.bytes.saturating_sub(size) + grown;
         Some(copy)
     }
 
@@ -81,24 +95,21 @@ impl JobStore for MemoryStore {
     fn list(&self, filter: &JobFilter, offset: usize, limit: usize) -> (Vec<JobRecord>, usize) {
         let now = SystemTime::now();
         let inner = self.lock();
-        let mut matched: Vec<&JobRecord> = inner
-            .jobs
-            .values()
-            .filter(|j| !j.is_expired(now) && filter.admits(j))
-            .collect();
-        matched.sort_by(|a, b| {
-            b.created()
-                .cmp(&a.created())
-                .then_with(|| a.id().cmp(b.id()))
-        });
-        let total = matched.len();
-        let page = matched
-            .into_iter()
-            .skip(offset)
-            .take(limit)
-            .cloned()
-            .collect();
-        (page, total)
+        let mut page = Vec::with_capacity(limit.min(1024));
+        let mut matched = 0;
+        for (_, id) in &inner.order {
+            let Some(job) = inner.jobs.get(id) else {
+                continue;
+            };
+            if job.is_expired(now) || !filter.admits(job) {
+                continue;
+            }
+            if matched >= offset && page.len() < limit {
+                page.push(job.clone());
+            }
+            matched += 1;
+        }
+        (page, matched)
     }
 
     fn purge_expired(&self, now: SystemTime) -> usize {
@@ -117,6 +128,10 @@ impl JobStore for MemoryStore {
 
     fn counts(&self) -> JobCounts {
         self.lock().counts
+    }
+
+    fn held_bytes(&self) -> u64 {
+        self.lock().bytes
     }
 
     fn ready(&self) -> bool {
@@ -145,5 +160,31 @@ mod tests {
         assert_eq!(store.purge_expired(t + Duration::from_secs(1)), 1);
         assert_eq!(store.counts().of(JobState::Dismissed), 0);
         assert_eq!(store.counts().total(), 2);
+    }
+
+    #[test]
+    fn listing_pages_newest_first_and_bytes_follow_the_records() {
+        let store = MemoryStore::new();
+        let t = SystemTime::UNIX_EPOCH + Duration::from_secs(1_000);
+        for i in 0..5u64 {
+            let at = t + Duration::from_secs(i);
+            store.insert(JobRecord::accept(format!("j{i}"), "p".into(), None, at));
+        }
+        let held = store.held_bytes();
+        let each = JobRecord::accept("j0".into(), "p".into(), None, t).heap_bytes() as u64;
+        assert_eq!(held, 5 * each);
+        let (page, matched) = store.list(&JobFilter::default(), 1, 2);
+        let ids: Vec<&str> = page.iter().map(|j| j.id()).collect();
+        assert_eq!((ids, matched), (vec!["j3", "j2"], 5));
+        store.update("j4", &mut |j| j.start(t).unwrap());
+        let ran = JobFilter {
+            states: vec![JobState::Running],
+            ..JobFilter::default()
+        };
+        let (page, matched) = store.list(&ran, 0, 10);
+        assert_eq!((page[0].id(), matched), ("j4", 1));
+        store.remove("j4");
+        assert_eq!(store.held_bytes(), 4 * each);
+        assert_eq!(store.list(&JobFilter::default(), 0, 10).1, 4);
     }
 }

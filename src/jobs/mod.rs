@@ -14,7 +14,7 @@ mod runner;
 use std::time::SystemTime;
 
 pub use lifecycle::{Failure, JobRecord, JobState, Outcome, Refused, Results};
-pub use manager::{Ending, Failures, Jobs, WorkError};
+pub use manager::{Ending, Failures, JobLimits, Jobs, SubmitRefused, WorkError};
 pub use memory::MemoryStore;
 pub use runner::{CancelOnDrop, Finished, Pool, PoolStats, QueueFull};
 
@@ -76,6 +76,8 @@ pub trait JobStore: Send + Sync + 'static {
     fn purge_expired(&self, now: SystemTime) -> usize;
     /// Records held per state.
     fn counts(&self) -> JobCounts;
+    /// Bytes the records hold, results included (for admission).
+    fn held_bytes(&self) -> u64;
     /// Whether the store can take work (a remote store would check its connection).
     fn ready(&self) -> bool;
 }

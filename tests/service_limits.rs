@@ -1,0 +1,110 @@
+//! Limits that bound what one client can hold or take: a job's running time, the jobs and
+//! bytes the store holds, and the exceedance probabilities one request may ask for.
+
+mod service_support;
+
+use std::time::{Duration, Instant};
+
+use axum::http::StatusCode;
+use serde_json::json;
+use service_support::{config, get, post_json, state_with, submit_tea_job, tea_inputs, wait_job};
+use zonetally::Config;
+
+const ZC: &str = "/processes/zone-counts/execution";
+
+#[tokio::test]
+async fn a_job_past_the_timeout_is_stopped_and_fails_saying_so() {
+    let (_, router) = state_with(Config {
+        job_timeout: 0.05,
+        ..config()
+    });
+    // 1000x1000 cells in 9,409 overlapping 40x40 zones: seconds of work in a test build, far
+    // past the limit. (The exact stopping is tested on the job manager with work that runs
+    // until cancelled; this checks the service's end of it.)
+    let zones: Vec<_> = (0..97)
+        .flat_map(|r| {
+            (0..97).map(move |c| {
+                json!({"id": format!("z{r}-{c}"), "rect": {"row": r * 10, "col": c * 10, "rows": 40, "cols": 40}})
+            })
+        })
+        .collect();
+    let values: Vec<f64> = (0..1_000_000u64)
+        .map(|i| 0.05 + 0.55 * ((i * 7919 % 101) as f64 / 100.0))
+        .collect();
+    let body = json!({"inputs": {
+        "raster": {"width": 1000, "height": 1000, "values": values},
+        "zones": zones,
+        "evidence": {"total": 330_000},
+        "summaries": {"pmf": false}
+    }});
+    let started = Instant::now();
+    let job = post_json(&router, ZC, &body, Some("respond-async")).await;
+    assert_eq!(job.status, StatusCode::CREATED, "{:?}", job.body);
+    let location = job.header("location").unwrap();
+    let status = wait_job(&router, &location).await;
+    assert_eq!(status["status"], "failed", "{status}");
+    assert!(
+        status["message"].as_str().unwrap().contains("0.05 s"),
+        "{status}"
+    );
+    assert!(started.elapsed() < Duration::from_secs(15));
+    let results = get(&router, &format!("{location}/results")).await;
+    assert_eq!(results.status, StatusCode::GATEWAY_TIMEOUT);
+    assert_eq!(results.json()["type"], "/problems/job-timeout");
+}
+
+#[tokio::test]
+async fn the_store_refuses_jobs_past_its_count_and_byte_caps() {
+    for capped in [
+        Config {
+            max_jobs: 1,
+            ..config()
+        },
+        Config {
+            max_job_bytes: 1,
+            ..config()
+        },
+    ] {
+        let (_, router) = state_with(capped);
+        let first = submit_tea_job(&router).await;
+        assert_eq!(first.status, StatusCode::CREATED);
+        wait_job(&router, &first.header("location").unwrap()).await;
+        let second = submit_tea_job(&router).await;
+        assert_eq!(second.status, StatusCode::SERVICE_UNAVAILABLE);
+        assert_eq!(second.json()["type"], "/problems/jobs-full");
+        assert!(second.header("retry-after").is_some());
+        // Synchronous requests hold nothing in the store and are still served.
+        let sync = post_json(&router, ZC, &json!({"inputs": tea_inputs()}), None).await;
+        assert_eq!(sync.status, StatusCode::OK);
+    }
+}
+
+#[tokio::test]
+async fn exceedance_probabilities_are_bounded_before_computing() {
+    let (_, router) = state_with(Config {
+        max_exceedance_values: 3,
+        ..config()
+    });
+    let mut inputs = tea_inputs();
+    inputs["summaries"]["exceedance"] = json!([1, 2]);
+    let r = post_json(&router, ZC, &json!({"inputs": inputs}), None).await;
+    assert_eq!(r.status, StatusCode::PAYLOAD_TOO_LARGE);
+    let p = r.json();
+    assert_eq!(p["pointer"], "/inputs/summaries/exceedance");
+    assert!(
+        p["detail"].as_str().unwrap().contains("4 exceedance"),
+        "{p}"
+    );
+    inputs["summaries"]["exceedance"] = json!([1]);
+    let r = post_json(&router, ZC, &json!({"inputs": inputs}), None).await;
+    assert_eq!(r.status, StatusCode::OK);
+}
+
+#[tokio::test]
+async fn a_page_of_no_jobs_is_refused_not_widened() {
+    let (_, router) = state_with(config());
+    let r = get(&router, "/jobs?limit=0").await;
+    assert_eq!(r.status, StatusCode::BAD_REQUEST);
+    assert!(r.json()["detail"].as_str().unwrap().contains("from 1 to"));
+    assert_eq!(get(&router, "/jobs?limit=1").await.status, StatusCode::OK);
+}
