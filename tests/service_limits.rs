@@ -108,3 +108,79 @@ async fn a_page_of_no_jobs_is_refused_not_widened() {
     assert!(r.json()["detail"].as_str().unwrap().contains("from 1 to"));
     assert_eq!(get(&router, "/jobs?limit=1").await.status, StatusCode::OK);
 }
+
+#[tokio::test]
+async fn queued_jobs_are_held_to_the_memory_budget_and_give_it_back() {
+    // Each job: 2,000 rects of 50x50 cells, about 20 MB of cell lists once expanded (the
+    // flood that once held 330 MB per queued job, scaled down). The budget fits three.
+    let (state, router) = state_with(Config {
+        memory_budget: Some(100 << 20),
+        ..config()
+    });
+    let zones: Vec<_> = (0..2000)
+        .map(|i| {
+            json!({"id": format!("z{i}"), "rect": {"row": (i / 45) * 10, "col": (i % 45) * 10, "rows": 50, "cols": 50}})
+        })
+        .collect();
+    let body = json!({"inputs": {
+        "raster": service_support::uneven_raster(500, 500),
+        "zones": zones,
+        "evidence": {"total": 80_000},
+        "summaries": {"pmf": false}
+    }});
+    let block = service_support::block_pool(&state);
+    let mut accepted = Vec::new();
+    let mut refused = None;
+    for _ in 0..6 {
+        let r = post_json(&router, ZC, &body, Some("respond-async")).await;
+        match r.status {
+            StatusCode::CREATED => accepted.push(r.header("location").unwrap()),
+            _ => {
+                refused = Some(r);
+                break;
+            }
+        }
+    }
+    let refused = refused.expect("the budget refused a job");
+    assert_eq!(
+        accepted.len(),
+        3,
+        "three jobs of about 30 MB fit in 100 MiB: {:?}",
+        refused.body
+    );
+    assert_eq!(refused.status, StatusCode::SERVICE_UNAVAILABLE);
+    assert_eq!(refused.json()["type"], "/problems/memory-budget");
+    assert!(refused.header("retry-after").is_some());
+    assert!(state.budget().used() <= state.budget().limit());
+    // Health checks are served meanwhile.
+    assert_eq!(get(&router, "/healthz").await.status, StatusCode::OK);
+    drop(block);
+    for location in &accepted {
+        assert_eq!(wait_job(&router, location).await["status"], "successful");
+    }
+    service_support::until("the charges to be given back", || {
+        state.budget().used() == 0
+    })
+    .await;
+    let again = post_json(&router, ZC, &body, Some("respond-async")).await;
+    assert_eq!(again.status, StatusCode::CREATED);
+}
+
+#[tokio::test]
+async fn a_body_that_does_not_fit_the_budget_is_refused_before_it_is_read() {
+    let (state, router) = state_with(Config {
+        memory_budget: Some(1 << 20),
+        ..config()
+    });
+    let big = json!({"inputs": {
+        "raster": service_support::uneven_raster(400, 400),
+        "zones": [{"id": "all", "rect": {"row": 0, "col": 0, "rows": 400, "cols": 400}}],
+        "evidence": {"total": 50_000}
+    }});
+    let r = post_json(&router, ZC, &big, None).await;
+    assert_eq!(r.status, StatusCode::SERVICE_UNAVAILABLE, "{:?}", r.body);
+    assert_eq!(r.json()["type"], "/problems/memory-budget");
+    assert_eq!(state.budget().used(), 0);
+    let small = post_json(&router, ZC, &json!({"inputs": tea_inputs()}), None).await;
+    assert_eq!(small.status, StatusCode::OK);
+}

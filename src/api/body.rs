@@ -85,6 +85,36 @@ pub async fn refuse_encoded(req: Request, next: Next) -> Response {
     resp
 }
 
+/// Middleware charging a request's body to the memory budget while the request is served: its
+/// `Content-Length` (capped at the largest body the route reads, which refuses more), or that
+/// largest body when no length is declared. A charge that does not fit gets 503.
+pub async fn charge_body(State(state): State<AppState>, req: Request, next: Next) -> Response {
+    if !has_body(&req) {
+        return next.run(req).await;
+    }
+    let config = state.config();
+    let mut largest = config.max_body_bytes as u64;
+    if req.uri().path() == "/rasters" {
+        largest = largest.max(config.limits().max_raster_file_bytes());
+    }
+    // The body's own size when known (a declared Content-Length sets it), else the header.
+    let declared = req.body().size_hint().exact().or_else(|| {
+        req.headers()
+            .get(header::CONTENT_LENGTH)
+            .and_then(|v| v.to_str().ok())
+            .and_then(|v| v.trim().parse::<u64>().ok())
+    });
+    let bytes = declared.map_or(largest, |n| n.min(largest));
+    match state.charge(bytes) {
+        Ok(charge) => {
+            let resp = next.run(req).await;
+            drop(charge);
+            resp
+        }
+        Err(e) => e.into_response(),
+    }
+}
+
 /// Middleware giving a request body `--body-timeout` to arrive, counted from when its headers
 /// were read. Past it, reading the body fails and the request is answered 408 (whatever the
 /// handler made of the failed read), and the connection is closed.

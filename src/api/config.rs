@@ -32,6 +32,14 @@ pub struct Config {
     /// Most bytes held by job records and their results; submissions beyond get 503.
     #[arg(long, env = "ZONETALLY_MAX_JOB_BYTES", default_value_t = 1 << 30)]
     pub max_job_bytes: u64,
+    /// Bytes of request data held at once (bodies being read, queued and running requests);
+    /// beyond it requests get 503. Default: half the container's memory limit, else half the
+    /// machine's memory.
+    #[arg(long, env = "ZONETALLY_MEMORY_BUDGET")]
+    pub memory_budget: Option<u64>,
+    /// Requests decoded at once (0: one per core); more wait their turn.
+    #[arg(long, env = "ZONETALLY_MAX_DECODES", default_value_t = 0)]
+    pub max_decodes: usize,
     /// Most exceedance probabilities one request may ask for: zones x thresholds.
     #[arg(
         long,
@@ -124,6 +132,8 @@ impl Default for Config {
             max_jobs: 10_000,
             max_job_bytes: 1 << 30,
             max_exceedance_values: 10_000_000,
+            memory_budget: None,
+            max_decodes: 0,
             raster_cache_bytes: 1 << 30,
             normaliser_cache_bytes: 256 << 20,
             max_body_bytes: 64 << 20,

@@ -7,6 +7,7 @@
 //! (`zonetally openapi > openapi/openapi.json` regenerates it; a test fails when they differ).
 
 pub mod body;
+pub mod budget;
 pub mod cache;
 pub mod config;
 pub mod decode;
@@ -132,6 +133,10 @@ pub fn router(state: AppState) -> Router {
             body::body_deadline,
         ))
         .route_layer(middleware::from_fn(body::refuse_encoded))
+        .route_layer(middleware::from_fn_with_state(
+            state.clone(),
+            body::charge_body,
+        ))
         .route_layer(middleware::from_fn_with_state(state.clone(), time_limit))
         // Hands the route template to `metrics::record`, which runs outside the routing.
         .route_layer(middleware::from_fn(|req: Request, next: Next| async move {

@@ -19,6 +19,7 @@ use serde_json::Value;
 use utoipa::ToSchema;
 
 use super::body;
+use super::budget::Charge;
 use super::jobs::{status_info, StatusInfo};
 use super::links::{link, Link, JSON, OGC_REL};
 use super::problem::{ApiError, Problem};
@@ -256,8 +257,9 @@ pub async fn execute(
             p.prepare(&body, accept.as_deref(), &st.context())
         })
         .await?;
+    let charge = state.charge(prepared.held_bytes())?;
     if wants_async {
-        return start_job(&state, process, mode, prepared);
+        return start_job(&state, process, mode, prepared, charge);
     }
     let budget = state.config().sync_budget;
     if prepared.estimated_cost() > budget {
@@ -274,6 +276,7 @@ pub async fn execute(
         .compute(control, move |c| run_counted(prepared, &st, c))
         .await?;
     guard.disarm();
+    drop(charge);
     let media_type = HeaderValue::from_static(output.format.media_type());
     let mut resp = (
         StatusCode::OK,
@@ -313,15 +316,22 @@ fn start_job(
     process: Arc<dyn Process>,
     mode: ResponseMode,
     prepared: Box<dyn Prepared>,
+    charge: Charge,
 ) -> Result<Response, ApiError> {
     let (st, output) = (state.clone(), process.output());
-    let work = Box::new(move |c: &Control| match run_counted(prepared, &st, c) {
-        Ok(out) => Ok(Results {
-            body: shape(mode, output, out.body),
-            media_type: out.format.media_type().to_string(),
-        }),
-        Err(ApiError::Cancelled) => Err(WorkError::Cancelled),
-        Err(e) => Err(WorkError::Failed(e.to_failure())),
+    // The charge is given back when the work has run (or is dropped unrun).
+    let work = Box::new(move |c: &Control| {
+        let result = run_counted(prepared, &st, c);
+        // From here the store holds the results, bounded by --max-job-bytes.
+        drop(charge);
+        match result {
+            Ok(out) => Ok(Results {
+                body: shape(mode, output, out.body),
+                media_type: out.format.media_type().to_string(),
+            }),
+            Err(ApiError::Cancelled) => Err(WorkError::Cancelled),
+            Err(e) => Err(WorkError::Failed(e.to_failure())),
+        }
     });
     let job = state
         .jobs()
@@ -374,6 +384,9 @@ mod tests {
         fn cells(&self) -> u64 {
             1
         }
+        fn held_bytes(&self) -> u64 {
+            0
+        }
         fn run(self: Box<Self>, _: &Context, _: &Control) -> Result<Output, ApiError> {
             panic!("index out of bounds in a kernel")
         }
@@ -387,7 +400,8 @@ mod tests {
         })
         .unwrap();
         let process = state.process("zone-counts").unwrap();
-        let resp = start_job(&state, process, ResponseMode::Raw, Box::new(Faulty)).unwrap();
+        let charge = state.charge(0).unwrap();
+        let resp = start_job(&state, process, ResponseMode::Raw, Box::new(Faulty), charge).unwrap();
         assert_eq!(resp.status(), StatusCode::CREATED);
         let id = resp.headers()[header::LOCATION]
             .to_str()

@@ -107,6 +107,13 @@ pub enum ApiError {
     JobTimeout {
         seconds: f64,
     },
+    /// Holding the request would exceed the memory budget.
+    OverBudget {
+        asked: u64,
+        used: u64,
+        limit: u64,
+        retry_after: u64,
+    },
     /// The job store holds as many jobs or bytes as it may.
     JobsFull {
         detail: String,
@@ -139,7 +146,7 @@ impl ApiError {
             NotAcceptable { .. } => StatusCode::NOT_ACCEPTABLE,
             Busy { .. } | ShuttingDown | Cancelled => StatusCode::SERVICE_UNAVAILABLE,
             Timeout { .. } | JobTimeout { .. } => StatusCode::GATEWAY_TIMEOUT,
-            JobsFull { .. } => StatusCode::SERVICE_UNAVAILABLE,
+            JobsFull { .. } | OverBudget { .. } => StatusCode::SERVICE_UNAVAILABLE,
             Internal { .. } => StatusCode::INTERNAL_SERVER_ERROR,
         }
     }
@@ -218,6 +225,12 @@ impl ApiError {
                 own("job-timeout"),
                 "job timed out",
                 format!("the job ran past this service's limit of {seconds} s for one job and was stopped: split the area or send fewer zones per job"),
+                None,
+            ),
+            OverBudget { asked, used, limit, retry_after } => (
+                own("memory-budget"),
+                "memory budget full",
+                format!("this request needs {asked} bytes while {used} of this service's {limit} bytes for requests are held (--memory-budget): retry in {retry_after} s, or send a smaller request"),
                 None,
             ),
             JobsFull { detail, .. } => (
@@ -348,7 +361,9 @@ impl IntoResponse for ApiError {
         )
             .into_response();
         match &self {
-            ApiError::Busy { retry_after } | ApiError::JobsFull { retry_after, .. } => {
+            ApiError::Busy { retry_after }
+            | ApiError::JobsFull { retry_after, .. }
+            | ApiError::OverBudget { retry_after, .. } => {
                 resp.headers_mut()
                     .insert(header::RETRY_AFTER, HeaderValue::from(*retry_after));
             }

@@ -3,6 +3,7 @@
 //!
 //! Processes never see this: `context()` hands them the narrow `processes::Context`.
 
+use super::budget::{default_budget, Charge, MemoryBudget};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 
@@ -21,6 +22,8 @@ pub struct AppState {
 
 struct Inner {
     config: Config,
+    budget: Arc<MemoryBudget>,
+    decodes: Arc<tokio::sync::Semaphore>,
     jobs: Jobs,
     caches: Caches,
     metrics: Arc<Metrics>,
@@ -35,9 +38,16 @@ impl AppState {
         let jobs = Jobs::in_memory(pool, Arc::new(JobFailures), config.job_limits());
         let caches = Caches::new(config.raster_cache_bytes, config.normaliser_cache_bytes)
             .with_data_dir(config.data_dir.clone());
+        let budget = MemoryBudget::new(config.memory_budget.unwrap_or_else(default_budget));
+        let decodes = match config.max_decodes {
+            0 => std::thread::available_parallelism().map_or(2, |n| n.get()),
+            n => n,
+        };
         Ok(AppState {
             inner: Arc::new(Inner {
                 config,
+                budget,
+                decodes: Arc::new(tokio::sync::Semaphore::new(decodes)),
                 jobs,
                 caches,
                 metrics: Arc::default(),
@@ -45,6 +55,24 @@ impl AppState {
                 shutting_down: AtomicBool::new(false),
             }),
         })
+    }
+
+    /// The memory budget requests charge.
+    pub fn budget(&self) -> &Arc<MemoryBudget> {
+        &self.inner.budget
+    }
+
+    /// Charges `bytes` of request data, or refuses with 503.
+    pub fn charge(&self, bytes: u64) -> Result<Charge, ApiError> {
+        self.inner
+            .budget
+            .charge(bytes)
+            .map_err(|o| ApiError::OverBudget {
+                asked: o.asked,
+                used: o.used,
+                limit: o.limit,
+                retry_after: self.inner.config.retry_after,
+            })
     }
 
     pub fn config(&self) -> &Config {
@@ -107,6 +135,18 @@ impl AppState {
         T: Send + 'static,
         F: FnOnce() -> Result<T, ApiError> + Send + 'static,
     {
+        // At most --max-decodes at once: each may expand its body up to the request limits.
+        let permit = self
+            .inner
+            .decodes
+            .clone()
+            .acquire_owned()
+            .await
+            .map_err(|_| ApiError::ShuttingDown)?;
+        let work = move || {
+            let _permit = permit;
+            work()
+        };
         match tokio::task::spawn_blocking(work).await {
             Ok(r) => r,
             Err(e) => Err(ApiError::Internal {

@@ -125,6 +125,10 @@ impl Prepared for Cells {
     fn cells(&self) -> u64 {
         self.plan.cells() as u64
     }
+    fn held_bytes(&self) -> u64 {
+        // Per reported cell: its triple and its JSON (about 64 bytes a number).
+        self.plan.cells() as u64 * (24 + 3 * 64)
+    }
     fn run(self: Box<Self>, ctx: &Context, control: &Control) -> Result<Output, ApiError> {
         let doc = compute(&self, ctx, control).map_err(run_error)?;
         match self.format {

@@ -94,6 +94,9 @@ pub trait Prepared: Send {
     fn estimated_cost(&self) -> f64;
     /// Cells the computation goes through, for the cells-processed counter.
     fn cells(&self) -> u64;
+    /// Bytes the request holds while it waits and runs, and its results will take: charged to
+    /// the memory budget. Rasters are not counted: the raster cache holds and bounds them.
+    fn held_bytes(&self) -> u64;
     /// Computes the output in the format chosen at `prepare`. Runs on the compute pool.
     fn run(self: Box<Self>, ctx: &Context, control: &Control) -> Result<Output, ApiError>;
 }

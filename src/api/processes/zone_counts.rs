@@ -126,6 +126,14 @@ impl Prepared for Counts {
     fn cells(&self) -> u64 {
         self.decoded.zones.cell_count()
     }
+    fn held_bytes(&self) -> u64 {
+        // Four bytes per zone cell; per zone, a summary and its JSON (about 64 bytes a number)
+        // with each threshold, and a pmf of up to PMF_ESTIMATE values.
+        const PMF_ESTIMATE: u64 = 64;
+        let zones = self.decoded.zones.entries.len() as u64;
+        let numbers = 16 + self.decoded.settings.thresholds().len() as u64 * 2 + PMF_ESTIMATE;
+        self.decoded.zones.cell_count() * 4 + zones * numbers * 64
+    }
     fn run(self: Box<Self>, ctx: &Context, control: &Control) -> Result<Output, ApiError> {
         let doc = compute(&self, ctx, control).map_err(run_error)?;
         encode(&self, &doc)
