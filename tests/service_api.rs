@@ -377,10 +377,10 @@ async fn dismissing_a_queued_job_cancels_it_before_it_runs() {
     );
     drop(block);
     until("the pool to skip the cancelled work", || {
-        state.pool().stats().skipped_cancelled == 1
+        state.pool_stats().skipped_cancelled == 1
     })
     .await;
-    assert_eq!(state.pool().stats().running, 0);
+    assert_eq!(state.pool_stats().running, 0);
     let text = get(&app, "/metrics").await;
     assert_eq!(
         metric(
@@ -437,7 +437,7 @@ async fn a_full_queue_answers_503_with_retry_after() {
         "the refused job is not kept"
     );
     drop(block);
-    until("the queue to drain", || state.pool().stats().queued == 0).await;
+    until("the queue to drain", || state.pool_stats().queued == 0).await;
     let r = post_json(&app, "/processes/zone-counts/execution", &body, None).await;
     assert_eq!(
         r.status,
@@ -812,7 +812,7 @@ async fn shutdown_fails_unfinished_jobs_and_refuses_new_work() {
     assert_eq!(get(&app, "/healthz").await.status, StatusCode::OK);
     drop(block);
     until("the cancelled job to be skipped", || {
-        state.pool().stats().skipped_cancelled == 1
+        state.pool_stats().skipped_cancelled == 1
     })
     .await;
     assert_eq!(

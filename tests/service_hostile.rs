@@ -438,7 +438,7 @@ async fn readiness_is_off_while_the_queue_is_full_and_comes_back() {
         tokio::time::sleep(Duration::from_millis(10)).await;
     }
     until("the queue to drain", || {
-        let s = state.pool().stats();
+        let s = state.pool_stats();
         s.queued + s.running == 0
     })
     .await;

@@ -520,7 +520,7 @@ async fn a_request_over_the_cost_limit_is_refused_before_running() {
     assert_eq!(p["type"], "/problems/too-large");
     assert_eq!(p["pointer"], "/inputs/zones");
     assert_eq!(
-        server.state.pool().stats().compute_seconds,
+        server.state.pool_stats().compute_seconds,
         0.0,
         "nothing may run for a refused request"
     );

@@ -14,9 +14,16 @@ pub struct Config {
     /// Address to listen on.
     #[arg(long, env = "ZONETALLY_BIND", default_value = "127.0.0.1:8080")]
     pub bind: SocketAddr,
-    /// Compute threads in the shared pool (0: one per core).
+    /// Compute threads of the pool async jobs run on (0: one per core).
     #[arg(long, env = "ZONETALLY_THREADS", default_value_t = 0)]
     pub threads: usize,
+    /// Compute threads of the pool synchronous requests run on, apart from async jobs so that
+    /// long jobs cannot starve them (0: one per core).
+    #[arg(long, env = "ZONETALLY_SYNC_THREADS", default_value_t = 0)]
+    pub sync_threads: usize,
+    /// Run synchronous requests on the async jobs' pool instead of their own (no fairness).
+    #[arg(long, env = "ZONETALLY_SHARED_POOL", default_value_t = false)]
+    pub shared_pool: bool,
     /// Computations admitted at once, queued or running; beyond it requests get 503.
     #[arg(long, env = "ZONETALLY_QUEUE", default_value_t = 64)]
     pub queue: usize,
@@ -126,6 +133,8 @@ impl Default for Config {
         Config {
             bind: SocketAddr::from(([127, 0, 0, 1], 8080)),
             threads: 0,
+            sync_threads: 0,
+            shared_pool: false,
             queue: 64,
             job_ttl: 3600.0,
             job_timeout: 3600.0,

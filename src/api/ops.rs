@@ -29,7 +29,11 @@ pub async fn healthz() -> Json<Health> {
 #[derive(Serialize, ToSchema)]
 pub struct Readiness {
     pub status: String,
+    /// Threads of the pool async jobs run on.
     pub compute_threads: usize,
+    /// Threads of the synchronous requests' own pool (0 when they share the jobs' pool).
+    pub sync_threads: usize,
+    /// Free admission slots of the jobs' pool.
     pub queue_free: usize,
     pub jobs: usize,
 }
@@ -51,6 +55,10 @@ pub async fn readyz(State(state): State<AppState>) -> Result<Json<Readiness>, Ap
     Ok(Json(Readiness {
         status: "ready".into(),
         compute_threads: pool.threads,
+        sync_threads: match state.config().shared_pool {
+            true => 0,
+            false => state.sync_pool().stats().threads,
+        },
         queue_free: pool.capacity.saturating_sub(pool.queued + pool.running),
         jobs: state.jobs().counts().total(),
     }))

@@ -22,6 +22,8 @@ pub struct AppState {
 
 struct Inner {
     config: Config,
+    /// Synchronous requests' own pool; `None` when they share the jobs' pool.
+    sync_pool: Option<Pool>,
     budget: Arc<MemoryBudget>,
     decodes: Arc<tokio::sync::Semaphore>,
     jobs: Jobs,
@@ -38,6 +40,10 @@ impl AppState {
         let jobs = Jobs::in_memory(pool, Arc::new(JobFailures), config.job_limits());
         let caches = Caches::new(config.raster_cache_bytes, config.normaliser_cache_bytes)
             .with_data_dir(config.data_dir.clone());
+        let sync_pool = match config.shared_pool {
+            true => None,
+            false => Some(Pool::new(config.sync_threads, config.queue)?),
+        };
         let budget = MemoryBudget::new(config.memory_budget.unwrap_or_else(default_budget));
         let decodes = match config.max_decodes {
             0 => std::thread::available_parallelism().map_or(2, |n| n.get()),
@@ -46,6 +52,7 @@ impl AppState {
         Ok(AppState {
             inner: Arc::new(Inner {
                 config,
+                sync_pool,
                 budget,
                 decodes: Arc::new(tokio::sync::Semaphore::new(decodes)),
                 jobs,
@@ -81,8 +88,23 @@ impl AppState {
     pub fn jobs(&self) -> &Jobs {
         &self.inner.jobs
     }
+    /// The pool async jobs run on.
     pub fn pool(&self) -> &Pool {
         self.inner.jobs.pool()
+    }
+    /// The figures of both pools together.
+    pub fn pool_stats(&self) -> crate::jobs::PoolStats {
+        match &self.inner.sync_pool {
+            Some(own) => self.pool().stats().plus(&own.stats()),
+            None => self.pool().stats(),
+        }
+    }
+    /// The pool synchronous requests run on (their own, unless `--shared-pool`).
+    pub fn sync_pool(&self) -> &Pool {
+        self.inner
+            .sync_pool
+            .as_ref()
+            .unwrap_or(self.inner.jobs.pool())
     }
     pub fn caches(&self) -> &Caches {
         &self.inner.caches
@@ -110,7 +132,7 @@ impl AppState {
     pub fn snapshot(&self) -> Snapshot {
         let caches = &self.inner.caches;
         Snapshot {
-            pool: self.pool().stats(),
+            pool: self.pool_stats(),
             rasters: caches.raster_stats(),
             normalisers: caches.normaliser_stats(),
             jobs: self.inner.jobs.counts(),
@@ -155,14 +177,15 @@ impl AppState {
         }
     }
 
-    /// Runs `work` on the compute pool and waits for it; never computes on the caller's thread.
+    /// Runs `work` on the synchronous requests' pool and waits for it; never computes on the
+    /// caller's thread.
     pub async fn compute<T, F>(&self, control: Arc<Control>, work: F) -> Result<T, ApiError>
     where
         T: Send + 'static,
         F: FnOnce(&Control) -> Result<T, ApiError> + Send + 'static,
     {
         let rx = self
-            .pool()
+            .sync_pool()
             .submit(control, work)
             .map_err(|_| ApiError::Busy {
                 retry_after: self.inner.config.retry_after,

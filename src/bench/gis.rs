@@ -14,6 +14,10 @@
 //!   execute on the same decoded raster and zones. Peak RSS (VmHWM) is reset after the client's
 //!   files are made and includes them (the client's copy of the GeoTIFF is held until sent).
 //!
+//! - S-sync-latency: 20 small sync requests one after another while two large async jobs run,
+//!   through the router in process: median and worst latency with synchronous requests on
+//!   their own pool (the default) and on the jobs' pool (`--shared-pool`), in the same run.
+//!
 //! Writes its fixtures into a fresh folder under the system's temporary folder and removes it.
 
 use std::path::{Path, PathBuf};
@@ -29,7 +33,7 @@ use crate::geo::zones::{rasterize, Polygon};
 use crate::geo::{geotiff, GeoTransform, Grid};
 
 /// The GIS workloads by name, with what they measure.
-pub const GIS_WORKLOADS: [(&str, &str); 3] = [
+pub const GIS_WORKLOADS: [(&str, &str); 4] = [
     (
         "G-read-5000",
         "read a 5000x5000 float32 deflate GeoTIFF: ours vs rasterio",
@@ -41,6 +45,10 @@ pub const GIS_WORKLOADS: [(&str, &str); 3] = [
     (
         "G-service-W25M",
         "W25M-partition through the service, GeoTIFF raster and GeoJSON zones, vs the engine",
+    ),
+    (
+        "S-sync-latency",
+        "a small sync request while two large async jobs run: own pool vs one shared pool",
     ),
 ];
 
@@ -63,6 +71,8 @@ pub struct GisRow {
     pub engine_s: Option<f64>,
     /// Service wall time / engine time.
     pub wall_over_engine: Option<f64>,
+    /// Median and largest latency of a small sync request, own pool then shared pool.
+    pub sync_latency_s: Option<[f64; 4]>,
     pub raster_bytes: Option<u64>,
     pub start_rss_bytes: Option<u64>,
     pub peak_rss_bytes: Option<u64>,
@@ -88,6 +98,7 @@ pub fn run(names: &[&str], log: &mut dyn std::io::Write) -> Result<Vec<GisRow>, 
         let row = match *name {
             "G-read-5000" => read_row(&dir),
             "G-rasterise-10k" => rasterise_row(&dir),
+            "S-sync-latency" => latency_row(),
             _ => service_row(),
         };
         rows.push(row?);
@@ -480,5 +491,124 @@ fn through_service(
                 .map_err(|e| e.to_string())?,
         )
         .await
+    })
+}
+
+/// Small sync requests timed while two large async jobs run.
+const PROBES: usize = 20;
+
+fn latency_row() -> Result<GisRow, String> {
+    let name = "S-sync-latency";
+    let own = sync_latency(false)?;
+    let shared = sync_latency(true)?;
+    let mut notes = vec![format!(
+        "{PROBES} sequential probes (8 cells, 2 zones) while two async jobs of 9,409 overlapping 40x40 zones on 1000x1000 cells run; the jobs are dismissed afterwards"
+    )];
+    for (mode, (_, _, all_ran)) in [("own pool", own), ("shared pool", shared)] {
+        if !all_ran {
+            notes.push(format!(
+                "{mode}: a job ended before the probes did; the later probes ran beside less work"
+            ));
+        }
+    }
+    Ok(GisRow {
+        workload: name.into(),
+        about: about(name),
+        ours_s: own.0[1],
+        sync_latency_s: Some([own.0[0], own.0[1], shared.0[0], shared.0[1]]),
+        // The worst probe decides whether a client was starved.
+        ratio: Some(own.0[1] / shared.0[1]),
+        notes,
+        ..GisRow::default()
+    })
+}
+
+/// ([median, max] probe latency, probes, whether both jobs ran throughout).
+fn sync_latency(shared: bool) -> Result<([f64; 2], usize, bool), String> {
+    use axum::body::Body;
+    use axum::http::Request;
+    use tower::ServiceExt;
+    let values: Vec<f64> = (0..1_000_000u64)
+        .map(|i| 0.05 + 0.55 * ((i * 7919 % 101) as f64 / 100.0))
+        .collect();
+    let zones: Vec<serde_json::Value> = (0..97)
+        .flat_map(|r| {
+            (0..97).map(move |c| {
+                serde_json::json!({"id": format!("z{r}-{c}"), "rect": {"row": r * 10, "col": c * 10, "rows": 40, "cols": 40}})
+            })
+        })
+        .collect();
+    let big = serde_json::json!({"inputs": {
+        "raster": {"width": 1000, "height": 1000, "values": values},
+        "zones": zones,
+        "evidence": {"total": 330_000},
+        "summaries": {"pmf": false}
+    }})
+    .to_string();
+    let probe = serde_json::json!({"inputs": {
+        "raster": {"width": 4, "height": 2, "values": [0.5, 0.5, 0.5, 0.5, 0.5, 0.5, 0.5, 0.5]},
+        "zones": [{"id": "cups", "rect": {"row": 0, "col": 0, "rows": 1, "cols": 4}}, {"id": "pair", "cells": [4, 5]}],
+        "evidence": {"total": 4}
+    }})
+    .to_string();
+    let runtime = tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .build()
+        .map_err(|e| format!("cannot start a runtime: {e}"))?;
+    runtime.block_on(async move {
+        let state = crate::AppState::new(crate::Config {
+            shared_pool: shared,
+            ..crate::Config::default()
+        })?;
+        let router = crate::app(state.clone());
+        let post = |body: String, prefer: Option<&'static str>| {
+            let router = router.clone();
+            async move {
+                let mut req = Request::post("/processes/zone-counts/execution")
+                    .header("content-type", "application/json");
+                if let Some(p) = prefer {
+                    req = req.header("prefer", p);
+                }
+                let req = req.body(Body::from(body)).map_err(|e| e.to_string())?;
+                let resp = router.oneshot(req).await.map_err(|e| e.to_string())?;
+                Ok::<_, String>((resp.status().as_u16(), resp.headers().clone()))
+            }
+        };
+        let mut jobs = Vec::new();
+        for _ in 0..2 {
+            let (status, headers) = post(big.clone(), Some("respond-async")).await?;
+            if status != 201 {
+                return Err(format!("a large job was refused with {status}"));
+            }
+            let location = headers
+                .get("location")
+                .and_then(|v| v.to_str().ok())
+                .unwrap_or_default()
+                .to_string();
+            jobs.push(location);
+        }
+        let running = || state.jobs().counts().of(crate::jobs::JobState::Running);
+        let waited = Instant::now();
+        while running() < 2 && waited.elapsed().as_secs() < 60 {
+            tokio::time::sleep(std::time::Duration::from_millis(5)).await;
+        }
+        let mut times = Vec::with_capacity(PROBES);
+        for _ in 0..PROBES {
+            let t = Instant::now();
+            let (status, _) = post(probe.clone(), None).await?;
+            if status != 200 {
+                return Err(format!("a probe was answered {status}"));
+            }
+            times.push(secs(t));
+        }
+        let all_ran = running() == 2;
+        for location in jobs {
+            let req = Request::delete(location.as_str())
+                .body(Body::empty())
+                .map_err(|e| e.to_string())?;
+            let _ = router.clone().oneshot(req).await;
+        }
+        times.sort_by(f64::total_cmp);
+        Ok(([times[PROBES / 2], times[PROBES - 1]], PROBES, all_ran))
     })
 }

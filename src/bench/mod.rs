@@ -244,6 +244,19 @@ fn render_gis(rows: &[gis::GisRow]) -> String {
     let mut s = String::from("\nGIS rows\n");
     for r in rows {
         s.push_str(&format!("  {}: {}\n", r.workload, r.about));
+        if let Some([own_p50, own_max, shared_p50, shared_max]) = r.sync_latency_s {
+            s.push_str(&format!(
+                "    own pool: median {}, max {}; shared pool: median {}, max {}\n",
+                time(own_p50),
+                time(own_max),
+                time(shared_p50),
+                time(shared_max)
+            ));
+            for n in &r.notes {
+                s.push_str(&format!("    note: {n}\n"));
+            }
+            continue;
+        }
         match (r.engine_s, r.rasterio_s) {
             (Some(e), _) => s.push_str(&format!(
                 "    service wall {}, engine {}, wall / engine {}\n",

@@ -44,6 +44,22 @@ pub struct PoolStats {
     pub rejected: u64,
 }
 
+impl PoolStats {
+    /// The figures of two pools together.
+    pub fn plus(&self, other: &PoolStats) -> PoolStats {
+        PoolStats {
+            threads: self.threads + other.threads,
+            capacity: self.capacity + other.capacity,
+            queued: self.queued + other.queued,
+            running: self.running + other.running,
+            compute_seconds: self.compute_seconds + other.compute_seconds,
+            panics: self.panics + other.panics,
+            skipped_cancelled: self.skipped_cancelled + other.skipped_cancelled,
+            rejected: self.rejected + other.rejected,
+        }
+    }
+}
+
 pub struct Pool {
     pool: rayon::ThreadPool,
     permits: Arc<Semaphore>,

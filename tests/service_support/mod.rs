@@ -106,23 +106,32 @@ pub fn uneven_raster(w: u32, h: u32) -> Value {
     json!({"width": w, "height": h, "values": values})
 }
 
-/// Holds every compute thread until dropped.
+/// Holds every compute thread (of the jobs' pool and the synchronous one) until dropped.
 pub struct PoolBlock {
     release: Vec<mpsc::Sender<()>>,
 }
 
 pub fn block_pool(state: &AppState) -> PoolBlock {
-    let threads = state.pool().stats().threads;
     let (started_tx, started_rx) = mpsc::channel();
     let mut release = Vec::new();
-    for _ in 0..threads {
-        let (tx, rx) = mpsc::channel::<()>();
-        release.push(tx);
-        let started = started_tx.clone();
-        state.pool().rayon().spawn(move || {
-            let _ = started.send(());
-            let _ = rx.recv();
-        });
+    let mut threads = 0;
+    let pools = [state.pool(), state.sync_pool()];
+    let distinct = if std::ptr::eq(pools[0], pools[1]) {
+        1
+    } else {
+        2
+    };
+    for pool in &pools[..distinct] {
+        threads += pool.stats().threads;
+        for _ in 0..pool.stats().threads {
+            let (tx, rx) = mpsc::channel::<()>();
+            release.push(tx);
+            let started = started_tx.clone();
+            pool.rayon().spawn(move || {
+                let _ = started.send(());
+                let _ = rx.recv();
+            });
+        }
     }
     for _ in 0..threads {
         started_rx
