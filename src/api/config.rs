@@ -47,6 +47,13 @@ pub struct Config {
     /// Requests decoded at once (0: one per core); more wait their turn.
     #[arg(long, env = "ZONETALLY_MAX_DECODES", default_value_t = 0)]
     pub max_decodes: usize,
+    /// A file of SHA-256 hashes of API keys, one per line: every request but the health checks
+    /// must then send `Authorization: Bearer <key>`, and jobs belong to their key. Off when absent.
+    #[arg(long, env = "ZONETALLY_API_KEYS")]
+    pub api_keys: Option<std::path::PathBuf>,
+    /// Serve `/metrics` without a key even when keys are on.
+    #[arg(long, env = "ZONETALLY_PUBLIC_METRICS", default_value_t = false)]
+    pub public_metrics: bool,
     /// Most exceedance probabilities one request may ask for: zones x thresholds.
     #[arg(
         long,
@@ -142,6 +149,8 @@ impl Default for Config {
             max_job_bytes: 1 << 30,
             max_exceedance_values: 10_000_000,
             memory_budget: None,
+            api_keys: None,
+            public_metrics: false,
             max_decodes: 0,
             raster_cache_bytes: 1 << 30,
             normaliser_cache_bytes: 256 << 20,

@@ -8,11 +8,12 @@ use axum::body::Body;
 use axum::extract::{Path, RawQuery, State};
 use axum::http::{header, HeaderMap, HeaderValue, StatusCode};
 use axum::response::{IntoResponse, Response};
-use axum::Json;
+use axum::{Extension, Json};
 use serde::Serialize;
 use sha2::{Digest, Sha256};
 use utoipa::ToSchema;
 
+use super::auth::Caller;
 use super::links::{link, Link, JSON, OGC_REL};
 use super::problem::{ApiError, Problem};
 use super::state::AppState;
@@ -116,6 +117,19 @@ fn number(
     }
 }
 
+/// The job as `caller` may see it: another key's job is as unknown as one that never was.
+fn visible(
+    state: &AppState,
+    caller: &Caller,
+    id: &str,
+) -> Result<crate::jobs::JobRecord, ApiError> {
+    state
+        .jobs()
+        .status(id)
+        .filter(|j| caller.may_see(j.owner()))
+        .ok_or_else(|| ApiError::NoSuchJob { id: id.to_string() })
+}
+
 #[utoipa::path(get, path = "/jobs", tag = "ogc",
     params(("processID" = Option<String>, Query, description = "only jobs of these processes (comma-separated)"),
            ("status" = Option<String>, Query, description = "only jobs with these statuses (comma-separated)"),
@@ -125,6 +139,7 @@ fn number(
               (status = 400, description = "bad query parameter", body = Problem, content_type = "application/problem+json")))]
 pub async fn jobs(
     State(state): State<AppState>,
+    Extension(caller): Extension<Caller>,
     RawQuery(query): RawQuery,
 ) -> Result<Json<JobList>, ApiError> {
     let pairs: Vec<(String, String)> = serde_urlencoded::from_str(query.as_deref().unwrap_or(""))
@@ -133,6 +148,7 @@ pub async fn jobs(
         detail: e.to_string(),
     })?;
     let mut filter = JobFilter {
+        owner: caller.0.clone(),
         processes: values(&pairs, "processID")
             .into_iter()
             .map(String::from)
@@ -222,10 +238,11 @@ fn matches_etag(headers: &HeaderMap, etag: &str) -> bool {
               (status = 404, description = "no such job", body = Problem, content_type = "application/problem+json")))]
 pub async fn job(
     State(state): State<AppState>,
+    Extension(caller): Extension<Caller>,
     Path(id): Path<String>,
     headers: HeaderMap,
 ) -> Result<Response, ApiError> {
-    let job = state.jobs().status(&id).ok_or(ApiError::NoSuchJob { id })?;
+    let job = visible(&state, &caller, &id)?;
     let body = serde_json::to_vec(&status_info(&job)).map_err(|e| ApiError::Internal {
         cause: e.to_string(),
     })?;
@@ -263,12 +280,10 @@ pub async fn job(
               (status = 500, description = "the job failed: its exception document", body = Problem, content_type = "application/problem+json")))]
 pub async fn results(
     State(state): State<AppState>,
+    Extension(caller): Extension<Caller>,
     Path(id): Path<String>,
 ) -> Result<Response, ApiError> {
-    let job = state
-        .jobs()
-        .status(&id)
-        .ok_or_else(|| ApiError::NoSuchJob { id: id.clone() })?;
+    let job = visible(&state, &caller, &id)?;
     match job.outcome().cloned() {
         Some(Outcome::Results(results)) => {
             let media_type =
@@ -307,8 +322,10 @@ pub async fn results(
               (status = 404, description = "no such job", body = Problem, content_type = "application/problem+json")))]
 pub async fn dismiss(
     State(state): State<AppState>,
+    Extension(caller): Extension<Caller>,
     Path(id): Path<String>,
 ) -> Result<Json<StatusInfo>, ApiError> {
+    visible(&state, &caller, &id)?;
     let job = state
         .jobs()
         .dismiss(&id)

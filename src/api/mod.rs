@@ -6,6 +6,7 @@
 //! routes the router has. The committed copy lives in `openapi/openapi.json`
 //! (`zonetally openapi > openapi/openapi.json` regenerates it; a test fails when they differ).
 
+pub mod auth;
 pub mod body;
 pub mod budget;
 pub mod cache;
@@ -136,6 +137,11 @@ pub fn router(state: AppState) -> Router {
         .route_layer(middleware::from_fn_with_state(
             state.clone(),
             body::charge_body,
+        ))
+        // Outermost of the route layers: no body is charged or read before the key is checked.
+        .route_layer(middleware::from_fn_with_state(
+            state.clone(),
+            auth::require_key,
         ))
         .route_layer(middleware::from_fn_with_state(state.clone(), time_limit))
         // Hands the route template to `metrics::record`, which runs outside the routing.

@@ -12,12 +12,14 @@ use axum::extract::rejection::BytesRejection;
 use axum::extract::{Path, State};
 use axum::http::{header, HeaderMap, HeaderValue, StatusCode};
 use axum::response::{IntoResponse, Response};
+use axum::Extension;
 use axum::Json;
 use bytes::Bytes;
 use serde::Serialize;
 use serde_json::Value;
 use utoipa::ToSchema;
 
+use super::auth::Caller;
 use super::body;
 use super::budget::Charge;
 use super::jobs::{status_info, StatusInfo};
@@ -231,6 +233,7 @@ fn shape(mode: ResponseMode, output: &str, raw: Bytes) -> Bytes {
               (status = 503, description = "compute queue full", body = Problem, content_type = "application/problem+json")))]
 pub async fn execute(
     State(state): State<AppState>,
+    Extension(caller): Extension<Caller>,
     Path(id): Path<String>,
     headers: HeaderMap,
     body: Result<Bytes, BytesRejection>,
@@ -259,7 +262,7 @@ pub async fn execute(
         .await?;
     let charge = state.charge(prepared.held_bytes())?;
     if wants_async {
-        return start_job(&state, process, mode, prepared, charge);
+        return start_job(&state, process, mode, prepared, charge, caller.0);
     }
     let budget = state.config().sync_budget;
     if prepared.estimated_cost() > budget {
@@ -317,6 +320,7 @@ fn start_job(
     mode: ResponseMode,
     prepared: Box<dyn Prepared>,
     charge: Charge,
+    owner: Option<String>,
 ) -> Result<Response, ApiError> {
     let (st, output) = (state.clone(), process.output());
     // The charge is given back when the work has run (or is dropped unrun).
@@ -335,7 +339,7 @@ fn start_job(
     });
     let job = state
         .jobs()
-        .submit(process.id(), None, work)
+        .submit(process.id(), owner, work)
         .map_err(|refused| {
             let retry_after = state.config().retry_after;
             match refused {
@@ -401,7 +405,15 @@ mod tests {
         .unwrap();
         let process = state.process("zone-counts").unwrap();
         let charge = state.charge(0).unwrap();
-        let resp = start_job(&state, process, ResponseMode::Raw, Box::new(Faulty), charge).unwrap();
+        let resp = start_job(
+            &state,
+            process,
+            ResponseMode::Raw,
+            Box::new(Faulty),
+            charge,
+            None,
+        )
+        .unwrap();
         assert_eq!(resp.status(), StatusCode::CREATED);
         let id = resp.headers()[header::LOCATION]
             .to_str()

@@ -107,6 +107,10 @@ pub enum ApiError {
     JobTimeout {
         seconds: f64,
     },
+    /// No key, or a key that is not one of the service's.
+    Unauthorized {
+        presented: bool,
+    },
     /// Holding the request would exceed the memory budget.
     OverBudget {
         asked: u64,
@@ -147,6 +151,7 @@ impl ApiError {
             Busy { .. } | ShuttingDown | Cancelled => StatusCode::SERVICE_UNAVAILABLE,
             Timeout { .. } | JobTimeout { .. } => StatusCode::GATEWAY_TIMEOUT,
             JobsFull { .. } | OverBudget { .. } => StatusCode::SERVICE_UNAVAILABLE,
+            Unauthorized { .. } => StatusCode::UNAUTHORIZED,
             Internal { .. } => StatusCode::INTERNAL_SERVER_ERROR,
         }
     }
@@ -225,6 +230,16 @@ impl ApiError {
                 own("job-timeout"),
                 "job timed out",
                 format!("the job ran past this service's limit of {seconds} s for one job and was stopped: split the area or send fewer zones per job"),
+                None,
+            ),
+            Unauthorized { presented } => (
+                own("unauthorized"),
+                "API key needed",
+                if *presented {
+                    "the key sent is not one of this service's: check it with the operator".to_string()
+                } else {
+                    "this service needs an API key: send `Authorization: Bearer <key>`".to_string()
+                },
                 None,
             ),
             OverBudget { asked, used, limit, retry_after } => (
@@ -366,6 +381,12 @@ impl IntoResponse for ApiError {
             | ApiError::OverBudget { retry_after, .. } => {
                 resp.headers_mut()
                     .insert(header::RETRY_AFTER, HeaderValue::from(*retry_after));
+            }
+            ApiError::Unauthorized { .. } => {
+                resp.headers_mut().insert(
+                    header::WWW_AUTHENTICATE,
+                    HeaderValue::from_static("Bearer realm=\"zonetally\""),
+                );
             }
             ApiError::ShuttingDown => {
                 resp.headers_mut()

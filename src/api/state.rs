@@ -3,6 +3,7 @@
 //!
 //! Processes never see this: `context()` hands them the narrow `processes::Context`.
 
+use super::auth::Keys;
 use super::budget::{default_budget, Charge, MemoryBudget};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
@@ -22,6 +23,8 @@ pub struct AppState {
 
 struct Inner {
     config: Config,
+    /// The API keys, when they are on.
+    keys: Option<Keys>,
     /// Synchronous requests' own pool; `None` when they share the jobs' pool.
     sync_pool: Option<Pool>,
     budget: Arc<MemoryBudget>,
@@ -44,6 +47,7 @@ impl AppState {
             true => None,
             false => Some(Pool::new(config.sync_threads, config.queue)?),
         };
+        let keys = config.api_keys.as_deref().map(Keys::load).transpose()?;
         let budget = MemoryBudget::new(config.memory_budget.unwrap_or_else(default_budget));
         let decodes = match config.max_decodes {
             0 => std::thread::available_parallelism().map_or(2, |n| n.get()),
@@ -52,6 +56,7 @@ impl AppState {
         Ok(AppState {
             inner: Arc::new(Inner {
                 config,
+                keys,
                 sync_pool,
                 budget,
                 decodes: Arc::new(tokio::sync::Semaphore::new(decodes)),
@@ -62,6 +67,11 @@ impl AppState {
                 shutting_down: AtomicBool::new(false),
             }),
         })
+    }
+
+    /// The API keys, when they are on.
+    pub fn keys(&self) -> Option<&Keys> {
+        self.inner.keys.as_ref()
     }
 
     /// The memory budget requests charge.

@@ -23,12 +23,15 @@ pub use runner::{CancelOnDrop, Finished, Pool, PoolStats, QueueFull};
 pub struct JobFilter {
     pub processes: Vec<String>,
     pub states: Vec<JobState>,
+    /// Only this owner's jobs, when set.
+    pub owner: Option<String>,
 }
 
 impl JobFilter {
     fn admits(&self, job: &JobRecord) -> bool {
         (self.processes.is_empty() || self.processes.iter().any(|p| p == job.process()))
             && (self.states.is_empty() || self.states.contains(&job.state()))
+            && self.owner.as_deref().is_none_or(|o| job.owner() == Some(o))
     }
 }
 

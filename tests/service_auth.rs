@@ -1,0 +1,124 @@
+//! API keys: off by default; with a key file every request but the health checks needs a key,
+//! and a job belongs to the key that created it.
+
+mod service_support;
+
+use axum::body::Body;
+use axum::http::{Request, StatusCode};
+use serde_json::json;
+use service_support::{config, get, send, state_with, tea_inputs, Reply};
+use zonetally::Config;
+
+// reference: SHA-256 test vectors of FIPS 180-2 (published worked examples): "abc", and the
+// 448-bit message "abcdbcdecdefdefgefghfghighijhijkijkljklmklmnlmnomnopnopq".
+const ALPHA: &str = "abc";
+const ALPHA_HASH: &str = "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad";
+const BETA: &str = "abcdbcdecdefdefgefghfghighijhijkijkljklmklmnlmnomnopnopq";
+const BETA_HASH: &str = "248d6a61d20638b8e5c026930c3e6039a33ce45964ff2167f6ecedd419db06c1";
+
+fn keyed(public_metrics: bool) -> Config {
+    let path = std::env::temp_dir().join(format!(
+        "zonetally-keys-{}-{public_metrics}",
+        std::process::id()
+    ));
+    std::fs::write(
+        &path,
+        format!("# test keys\n{ALPHA_HASH} alpha\n{BETA_HASH} beta\n"),
+    )
+    .unwrap();
+    Config {
+        api_keys: Some(path),
+        public_metrics,
+        ..config()
+    }
+}
+
+async fn call(router: &axum::Router, method: &str, path: &str, key: Option<&str>) -> Reply {
+    let mut req = Request::builder().method(method).uri(path);
+    if let Some(k) = key {
+        req = req.header("authorization", format!("Bearer {k}"));
+    }
+    let body = if method == "POST" {
+        req = req
+            .header("content-type", "application/json")
+            .header("prefer", "respond-async");
+        Body::from(serde_json::to_vec(&json!({"inputs": tea_inputs()})).unwrap())
+    } else {
+        Body::empty()
+    };
+    send(router, req.body(body).unwrap()).await
+}
+
+#[tokio::test]
+async fn without_a_key_file_nothing_changes() {
+    let (_, router) = state_with(config());
+    let r = call(&router, "POST", "/processes/zone-counts/execution", None).await;
+    assert_eq!(r.status, StatusCode::CREATED);
+}
+
+#[tokio::test]
+async fn requests_need_a_known_key_and_jobs_stay_with_their_key() {
+    let (_, router) = state_with(keyed(false));
+    for path in ["/healthz", "/readyz"] {
+        assert_eq!(get(&router, path).await.status, StatusCode::OK, "{path}");
+    }
+    let none = call(&router, "GET", "/jobs", None).await;
+    assert_eq!(none.status, StatusCode::UNAUTHORIZED);
+    assert_eq!(none.json()["type"], "/problems/unauthorized");
+    assert!(none
+        .header("www-authenticate")
+        .unwrap()
+        .starts_with("Bearer"));
+    let wrong = call(&router, "GET", "/jobs", Some(ALPHA_HASH)).await;
+    assert_eq!(wrong.status, StatusCode::UNAUTHORIZED);
+    assert_eq!(
+        call(&router, "GET", "/metrics", None).await.status,
+        StatusCode::UNAUTHORIZED
+    );
+
+    let made = call(
+        &router,
+        "POST",
+        "/processes/zone-counts/execution",
+        Some(ALPHA),
+    )
+    .await;
+    assert_eq!(made.status, StatusCode::CREATED, "{:?}", made.body);
+    let location = made.header("location").unwrap();
+    for path in [location.clone(), format!("{location}/results")] {
+        let other = call(&router, "GET", &path, Some(BETA)).await;
+        assert_eq!(other.status, StatusCode::NOT_FOUND, "{path}");
+    }
+    assert_eq!(
+        call(&router, "DELETE", &location, Some(BETA)).await.status,
+        StatusCode::NOT_FOUND
+    );
+    let listed = call(&router, "GET", "/jobs", Some(BETA)).await.json();
+    assert_eq!(listed["jobs"].as_array().unwrap().len(), 0);
+    let theirs_own = call(&router, "GET", "/jobs", Some(ALPHA)).await.json();
+    assert_eq!(theirs_own["jobs"].as_array().unwrap().len(), 1);
+    let own = call(&router, "GET", &location, Some(ALPHA)).await;
+    assert_eq!(own.status, StatusCode::OK);
+    let deleted = call(&router, "DELETE", &location, Some(ALPHA)).await;
+    assert_eq!(deleted.status, StatusCode::OK);
+}
+
+#[tokio::test]
+async fn metrics_can_stay_public() {
+    let (_, router) = state_with(keyed(true));
+    assert_eq!(get(&router, "/metrics").await.status, StatusCode::OK);
+    assert_eq!(get(&router, "/jobs").await.status, StatusCode::UNAUTHORIZED);
+}
+
+#[tokio::test]
+async fn a_key_file_holding_a_plain_key_is_refused_at_start() {
+    let path = std::env::temp_dir().join(format!("zonetally-plain-keys-{}", std::process::id()));
+    std::fs::write(&path, "my-secret-key\n").unwrap();
+    let e = zonetally::AppState::new(Config {
+        api_keys: Some(path),
+        ..config()
+    })
+    .err()
+    .unwrap();
+    assert!(e.contains("line 1") && e.contains("SHA-256"), "{e}");
+}
