@@ -17,8 +17,12 @@ const BETA: &str = "abcdbcdecdefdefgefghfghighijhijkijkljklmklmnlmnomnopnopq";
 const BETA_HASH: &str = "248d6a61d20638b8e5c026930c3e6039a33ce45964ff2167f6ecedd419db06c1";
 
 fn keyed(public_metrics: bool) -> Config {
+    keyed_at(public_metrics, 0)
+}
+
+fn keyed_at(public_metrics: bool, rate_limit: u32) -> Config {
     let path = std::env::temp_dir().join(format!(
-        "zonetally-keys-{}-{public_metrics}",
+        "zonetally-keys-{}-{public_metrics}-{rate_limit}",
         std::process::id()
     ));
     std::fs::write(
@@ -29,6 +33,7 @@ fn keyed(public_metrics: bool) -> Config {
     Config {
         api_keys: Some(path),
         public_metrics,
+        rate_limit,
         ..config()
     }
 }
@@ -121,4 +126,24 @@ async fn a_key_file_holding_a_plain_key_is_refused_at_start() {
     .err()
     .unwrap();
     assert!(e.contains("line 1") && e.contains("SHA-256"), "{e}");
+}
+
+#[tokio::test]
+async fn each_key_is_held_to_its_rate() {
+    let (_, router) = state_with(keyed_at(false, 1));
+    // A burst of one, then refused until the bucket refills a second later.
+    assert_eq!(
+        call(&router, "GET", "/jobs", Some(ALPHA)).await.status,
+        StatusCode::OK
+    );
+    let refused = call(&router, "GET", "/jobs", Some(ALPHA)).await;
+    assert_eq!(refused.status, StatusCode::TOO_MANY_REQUESTS);
+    assert_eq!(refused.json()["type"], "/problems/rate-limited");
+    assert!(refused.header("retry-after").is_some());
+    // Another key has its own rate; health checks count against none.
+    assert_eq!(
+        call(&router, "GET", "/jobs", Some(BETA)).await.status,
+        StatusCode::OK
+    );
+    assert_eq!(get(&router, "/healthz").await.status, StatusCode::OK);
 }

@@ -1,6 +1,7 @@
 //! API keys, off by default: with `--api-keys FILE`, every request but the health checks (and
 //! `/metrics` with `--public-metrics`) must send `Authorization: Bearer <key>`, and jobs belong
-//! to the key that created them.
+//! to the key that created them. With `--rate-limit`, each key's requests are also counted
+//! against its rate (`governor`), and those beyond it get 429 with `Retry-After`.
 //!
 //! The file holds SHA-256 hashes of the keys, one per line as 64 hex digits (optionally
 //! followed by a label), never the keys themselves; `#` starts a comment. A presented key is
@@ -115,7 +116,12 @@ pub async fn require_key(State(state): State<AppState>, mut req: Request, next: 
                     .and_then(|v| v.strip_prefix("Bearer "))
                     .map(str::trim);
                 match presented.and_then(|k| keys.check(k)) {
-                    Some(owner) => Caller(Some(owner)),
+                    Some(owner) => {
+                        if let Some(retry_after) = state.over_rate(&owner) {
+                            return ApiError::RateLimited { retry_after }.into_response();
+                        }
+                        Caller(Some(owner))
+                    }
                     None => {
                         return ApiError::Unauthorized {
                             presented: presented.is_some(),

@@ -51,6 +51,12 @@ pub struct Config {
     /// must then send `Authorization: Bearer <key>`, and jobs belong to their key. Off when absent.
     #[arg(long, env = "ZONETALLY_API_KEYS")]
     pub api_keys: Option<std::path::PathBuf>,
+    /// Requests per second each API key may send (0: no limit); beyond it 429.
+    #[arg(long, env = "ZONETALLY_RATE_LIMIT", default_value_t = 0)]
+    pub rate_limit: u32,
+    /// Requests a key may send at once above its rate (0: the rate itself).
+    #[arg(long, env = "ZONETALLY_RATE_BURST", default_value_t = 0)]
+    pub rate_burst: u32,
     /// Serve `/metrics` without a key even when keys are on.
     #[arg(long, env = "ZONETALLY_PUBLIC_METRICS", default_value_t = false)]
     pub public_metrics: bool,
@@ -151,6 +157,8 @@ impl Default for Config {
             memory_budget: None,
             api_keys: None,
             public_metrics: false,
+            rate_limit: 0,
+            rate_burst: 0,
             max_decodes: 0,
             raster_cache_bytes: 1 << 30,
             normaliser_cache_bytes: 256 << 20,

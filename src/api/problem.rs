@@ -111,6 +111,10 @@ pub enum ApiError {
     Unauthorized {
         presented: bool,
     },
+    /// The key sent more requests than its rate allows.
+    RateLimited {
+        retry_after: u64,
+    },
     /// Holding the request would exceed the memory budget.
     OverBudget {
         asked: u64,
@@ -152,6 +156,7 @@ impl ApiError {
             Timeout { .. } | JobTimeout { .. } => StatusCode::GATEWAY_TIMEOUT,
             JobsFull { .. } | OverBudget { .. } => StatusCode::SERVICE_UNAVAILABLE,
             Unauthorized { .. } => StatusCode::UNAUTHORIZED,
+            RateLimited { .. } => StatusCode::TOO_MANY_REQUESTS,
             Internal { .. } => StatusCode::INTERNAL_SERVER_ERROR,
         }
     }
@@ -230,6 +235,12 @@ impl ApiError {
                 own("job-timeout"),
                 "job timed out",
                 format!("the job ran past this service's limit of {seconds} s for one job and was stopped: split the area or send fewer zones per job"),
+                None,
+            ),
+            RateLimited { retry_after } => (
+                own("rate-limited"),
+                "too many requests",
+                format!("this key sent more requests than this service allows it (--rate-limit): retry in {retry_after} s"),
                 None,
             ),
             Unauthorized { presented } => (
@@ -378,7 +389,8 @@ impl IntoResponse for ApiError {
         match &self {
             ApiError::Busy { retry_after }
             | ApiError::JobsFull { retry_after, .. }
-            | ApiError::OverBudget { retry_after, .. } => {
+            | ApiError::OverBudget { retry_after, .. }
+            | ApiError::RateLimited { retry_after } => {
                 resp.headers_mut()
                     .insert(header::RETRY_AFTER, HeaderValue::from(*retry_after));
             }

@@ -25,6 +25,8 @@ struct Inner {
     config: Config,
     /// The API keys, when they are on.
     keys: Option<Keys>,
+    /// Requests per key, when keys and a rate limit are on.
+    rates: Option<governor::DefaultKeyedRateLimiter<String>>,
     /// Synchronous requests' own pool; `None` when they share the jobs' pool.
     sync_pool: Option<Pool>,
     budget: Arc<MemoryBudget>,
@@ -48,6 +50,12 @@ impl AppState {
             false => Some(Pool::new(config.sync_threads, config.queue)?),
         };
         let keys = config.api_keys.as_deref().map(Keys::load).transpose()?;
+        let rates = std::num::NonZeroU32::new(config.rate_limit)
+            .filter(|_| keys.is_some())
+            .map(|rate| {
+                let burst = std::num::NonZeroU32::new(config.rate_burst).unwrap_or(rate);
+                governor::RateLimiter::keyed(governor::Quota::per_second(rate).allow_burst(burst))
+            });
         let budget = MemoryBudget::new(config.memory_budget.unwrap_or_else(default_budget));
         let decodes = match config.max_decodes {
             0 => std::thread::available_parallelism().map_or(2, |n| n.get()),
@@ -57,6 +65,7 @@ impl AppState {
             inner: Arc::new(Inner {
                 config,
                 keys,
+                rates,
                 sync_pool,
                 budget,
                 decodes: Arc::new(tokio::sync::Semaphore::new(decodes)),
@@ -72,6 +81,15 @@ impl AppState {
     /// The API keys, when they are on.
     pub fn keys(&self) -> Option<&Keys> {
         self.inner.keys.as_ref()
+    }
+
+    /// Counts a request of `owner` against its rate; the seconds to wait when it is over.
+    pub fn over_rate(&self, owner: &str) -> Option<u64> {
+        use governor::clock::{Clock, DefaultClock};
+        let rates = self.inner.rates.as_ref()?;
+        let not_until = rates.check_key(&owner.to_string()).err()?;
+        let wait = not_until.wait_time_from(DefaultClock::default().now());
+        Some(wait.as_secs_f64().ceil().max(1.0) as u64)
     }
 
     /// The memory budget requests charge.
