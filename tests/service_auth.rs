@@ -147,3 +147,46 @@ async fn each_key_is_held_to_its_rate() {
     );
     assert_eq!(get(&router, "/healthz").await.status, StatusCode::OK);
 }
+
+#[tokio::test]
+async fn rasters_stay_with_the_key_that_posted_them() {
+    let (_, router) = state_with(keyed(false));
+    let raster = serde_json::to_vec(&tea_inputs()["raster"]).unwrap();
+    let post = |key: &'static str| {
+        Request::post("/rasters")
+            .header("content-type", "application/json")
+            .header("authorization", format!("Bearer {key}"))
+            .body(Body::from(raster.clone()))
+            .unwrap()
+    };
+    let posted = send(&router, post(ALPHA)).await;
+    assert_eq!(posted.status, StatusCode::CREATED);
+    let reference = posted.json()["ref"].as_str().unwrap().to_string();
+    let path = format!("/rasters/{reference}");
+    assert_eq!(
+        call(&router, "GET", &path, Some(ALPHA)).await.status,
+        StatusCode::OK
+    );
+    assert_eq!(
+        call(&router, "GET", &path, Some(BETA)).await.status,
+        StatusCode::NOT_FOUND
+    );
+    let execute = |key: &'static str| {
+        let mut inputs = tea_inputs();
+        inputs["raster"] = json!({"ref": reference});
+        Request::post("/processes/zone-counts/execution")
+            .header("content-type", "application/json")
+            .header("authorization", format!("Bearer {key}"))
+            .body(Body::from(
+                serde_json::to_vec(&json!({"inputs": inputs})).unwrap(),
+            ))
+            .unwrap()
+    };
+    assert_eq!(send(&router, execute(ALPHA)).await.status, StatusCode::OK);
+    let other = send(&router, execute(BETA)).await;
+    assert_eq!(other.status, StatusCode::BAD_REQUEST);
+    assert_eq!(other.json()["pointer"], "/inputs/raster/ref");
+    // The same raster posted by the other key is its own.
+    assert_eq!(send(&router, post(BETA)).await.status, StatusCode::CREATED);
+    assert_eq!(send(&router, execute(BETA)).await.status, StatusCode::OK);
+}

@@ -1,6 +1,6 @@
 //! API keys, off by default: with `--api-keys FILE`, every request but the health checks (and
 //! `/metrics` with `--public-metrics`) must send `Authorization: Bearer <key>`, and jobs belong
-//! to the key that created them. With `--rate-limit`, each key's requests are also counted
+//! to the key that created them, as do uploaded rasters (`cache::Scoped`). With `--rate-limit`, each key's requests are also counted
 //! against its rate (`governor`), and those beyond it get 429 with `Retry-After`.
 //!
 //! The file holds SHA-256 hashes of the keys, one per line as 64 hex digits (optionally

@@ -136,16 +136,42 @@ impl Caches {
     /// Keeps `raster` under its hash and returns the copy held (an equal raster already held
     /// is reused, so its memory is not doubled).
     pub fn keep_raster(&self, raster: Raster, frame: Frame) -> (String, HeldRaster) {
+        let (hash, _, held) = self.keep_raster_for(raster, frame, None);
+        (hash, held)
+    }
+
+    /// Keeps `raster` for `owner` (an API key's owner id, or everyone when `None`): returns its
+    /// hash (the reference clients send), the key it is held under, and the copy held.
+    pub fn keep_raster_for(
+        &self,
+        raster: Raster,
+        frame: Frame,
+        owner: Option<&str>,
+    ) -> (String, String, HeldRaster) {
         let hash = raster_hash(&raster, &frame);
-        if let Some(held) = self.raster(&hash) {
-            return (hash, held);
+        let key = scoped_key(owner, &hash);
+        if let Some(held) = self.raster(&key) {
+            return (hash, key, held);
         }
         let held = HeldRaster {
             raster: Arc::new(raster),
             frame,
         };
-        self.rasters.insert(hash.clone(), held.clone());
-        (hash, held)
+        self.rasters.insert(key.clone(), held.clone());
+        (hash, key, held)
+    }
+
+    /// The raster `reference` names for `owner`: another owner's rasters are not found.
+    pub fn raster_for(&self, reference: &str, owner: Option<&str>) -> Option<HeldRaster> {
+        self.raster(&scoped_key(owner, reference))
+    }
+
+    /// This cache as the raster source of one caller.
+    pub fn scoped<'a>(&'a self, owner: Option<&'a str>) -> Scoped<'a> {
+        Scoped {
+            caches: self,
+            owner,
+        }
     }
 
     /// The normaliser of (raster, evidence), computed on a miss. Runs on the compute pool.
@@ -188,22 +214,34 @@ impl Caches {
     }
 }
 
-impl RasterSource for Caches {
-    fn resolve(&self, reference: &str) -> Result<(String, HeldRaster), DecodeError> {
+impl Caches {
+    fn resolve_for(
+        &self,
+        reference: &str,
+        owner: Option<&str>,
+    ) -> Result<(String, HeldRaster), DecodeError> {
         if !is_hash(reference) {
             return Err(DecodeError::at(
                 "/raster/ref",
                 format!("`{reference}` is not a raster reference: it must be `sha256:` and 64 lowercase hex digits, as returned by POST /rasters"),
             ));
         }
-        let held = self.raster(reference).ok_or_else(|| DecodeError {
-            pointer: "/raster/ref".into(),
-            detail: format!("raster `{reference}` is not held by this service"),
-            kind: DecodeKind::UnknownRaster {
-                reference: reference.to_string(),
-            },
-        })?;
-        Ok((reference.to_string(), held))
+        let held = self
+            .raster_for(reference, owner)
+            .ok_or_else(|| DecodeError {
+                pointer: "/raster/ref".into(),
+                detail: format!("raster `{reference}` is not held by this service"),
+                kind: DecodeKind::UnknownRaster {
+                    reference: reference.to_string(),
+                },
+            })?;
+        Ok((scoped_key(owner, reference), held))
+    }
+}
+
+impl RasterSource for Caches {
+    fn resolve(&self, reference: &str) -> Result<(String, HeldRaster), DecodeError> {
+        self.resolve_for(reference, None)
     }
 
     fn keep(&self, raster: Raster, frame: Frame) -> (Option<String>, HeldRaster) {
@@ -240,6 +278,35 @@ impl NormaliserSource for Caches {
             Some(hash) => self.normaliser_of(hash, raster, evidence, control),
             None => Uncached.normaliser(None, raster, evidence, control),
         }
+    }
+}
+
+/// The key a raster is held under: its hash, prefixed by its owner when API keys are on, so
+/// one key's rasters cannot be named by another.
+fn scoped_key(owner: Option<&str>, hash: &str) -> String {
+    match owner {
+        None => hash.to_string(),
+        Some(o) => format!("{o}/{hash}"),
+    }
+}
+
+/// The caches as one caller's raster source: references resolve among that caller's rasters,
+/// and rasters kept are kept for it.
+pub struct Scoped<'a> {
+    caches: &'a Caches,
+    owner: Option<&'a str>,
+}
+
+impl RasterSource for Scoped<'_> {
+    fn resolve(&self, reference: &str) -> Result<(String, HeldRaster), DecodeError> {
+        self.caches.resolve_for(reference, self.owner)
+    }
+    fn keep(&self, raster: Raster, frame: Frame) -> (Option<String>, HeldRaster) {
+        let (_, key, held) = self.caches.keep_raster_for(raster, frame, self.owner);
+        (Some(key), held)
+    }
+    fn read_file(&self, href: &str, max_bytes: u64) -> Result<Vec<u8>, DecodeError> {
+        self.caches.read_file(href, max_bytes)
     }
 }
 

@@ -25,7 +25,7 @@ use super::budget::Charge;
 use super::jobs::{status_info, StatusInfo};
 use super::links::{link, Link, JSON, OGC_REL};
 use super::problem::{ApiError, Problem};
-use super::processes::{Output, Prepared, Process, ResponseMode};
+use super::processes::{Context, Output, Prepared, Process, ResponseMode};
 use super::state::AppState;
 use crate::engine::Control;
 use crate::jobs::{CancelOnDrop, Results, SubmitRefused, WorkError};
@@ -254,10 +254,17 @@ pub async fn execute(
         .get(header::ACCEPT)
         .and_then(|v| v.to_str().ok())
         .map(str::to_string);
+    let owner = caller.0.clone();
     let (mode, prepared) = state
         .decode(move || {
             body::check_depth(&body, depth)?;
-            p.prepare(&body, accept.as_deref(), &st.context())
+            // References resolve among the caller's own rasters.
+            let rasters = st.caches().scoped(owner.as_deref());
+            let ctx = Context {
+                rasters: &rasters,
+                ..st.context()
+            };
+            p.prepare(&body, accept.as_deref(), &ctx)
         })
         .await?;
     let charge = state.charge(prepared.held_bytes())?;

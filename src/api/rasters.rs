@@ -7,12 +7,13 @@ use axum::extract::rejection::QueryRejection;
 use axum::extract::{Path, Query, State};
 use axum::http::{header, HeaderMap, HeaderValue, StatusCode};
 use axum::response::{IntoResponse, Response};
-use axum::Json;
+use axum::{Extension, Json};
 use bytes::Bytes;
 use http_body_util::{BodyExt, LengthLimitError, Limited};
 use serde::{Deserialize, Serialize};
 use utoipa::{IntoParams, ToSchema};
 
+use super::auth::Caller;
 use super::body;
 use super::cache::is_hash;
 use super::decode::{self, HeldRaster};
@@ -121,6 +122,7 @@ async fn read_body(body: Body, limit: u64) -> Result<Bytes, ApiError> {
               (status = 422, description = "values outside [0, 1] or an unsupported georeferencing", body = Problem, content_type = "application/problem+json")))]
 pub async fn post_raster(
     State(state): State<AppState>,
+    Extension(caller): Extension<Caller>,
     headers: HeaderMap,
     query: Result<Query<RasterQuery>, QueryRejection>,
     body: Body,
@@ -164,7 +166,10 @@ pub async fn post_raster(
                     .to_string();
                 ApiError::from_decode(e, "")
             })?;
-            Ok(st.caches().keep_raster(raster, frame))
+            let (hash, _, held) = st
+                .caches()
+                .keep_raster_for(raster, frame, caller.0.as_deref());
+            Ok((hash, held))
         })
         .await?;
     let location =
@@ -185,6 +190,7 @@ pub async fn post_raster(
               (status = 404, description = "not held", body = Problem, content_type = "application/problem+json")))]
 pub async fn get_raster(
     State(state): State<AppState>,
+    Extension(caller): Extension<Caller>,
     Path(reference): Path<String>,
 ) -> Result<Json<RasterInfo>, ApiError> {
     if !is_hash(&reference) {
@@ -194,7 +200,7 @@ pub async fn get_raster(
     }
     let raster = state
         .caches()
-        .raster(&reference)
+        .raster_for(&reference, caller.0.as_deref())
         .ok_or_else(|| ApiError::NotFound {
             path: format!("/rasters/{reference}"),
         })?;
