@@ -11,7 +11,6 @@ use axum::http::{Request, StatusCode};
 use base64::Engine as _;
 use serde_json::{json, Value};
 use service_support::{config, get, post_json, send, state_with, tea_inputs, Reply};
-use zonetally::geo::{geotiff, GeoTransform, Grid};
 use zonetally::Config;
 
 const VALLEY_TIF: &[u8] = include_bytes!("../demo/valley.tif");
@@ -416,17 +415,22 @@ async fn cell_posteriors_come_back_as_a_georeferenced_geotiff() {
     // probability 4/7.
     assert!((values[0] - 4.0 / 7.0).abs() < 1e-15);
     assert!(values[14].is_nan(), "the nodata cell stays nodata");
-    // The georeferencing survives: a single-band copy reads back with the same grid.
-    let grid = Grid {
-        width: 4,
-        height: 2,
-        transform: Some(GeoTransform::new(1000.0, 2000.0, 10.0, 10.0).unwrap()),
-        crs: Some(32631),
-    };
-    let band: Vec<f64> = values.iter().step_by(2).copied().collect();
-    let one = geotiff::write(&grid, &[&band], None).unwrap();
-    let back = geotiff::read(&one, &geotiff::ReadLimits { max_cells: 100 }).unwrap();
-    assert_eq!(back.grid, grid);
+    // The georeferencing survives, read off the output's own tags (GeoTIFF 1.1): cell size,
+    // the tiepoint of the top-left corner, and the EPSG code in the GeoKey directory.
+    use tiff::tags::Tag;
+    assert_eq!(
+        decoder.get_tag_f64_vec(Tag::ModelPixelScaleTag).unwrap(),
+        [10.0, 10.0, 0.0]
+    );
+    assert_eq!(
+        decoder.get_tag_f64_vec(Tag::ModelTiepointTag).unwrap(),
+        [0.0, 0.0, 0.0, 1000.0, 2000.0, 0.0]
+    );
+    let keys = decoder.get_tag_u16_vec(Tag::GeoKeyDirectoryTag).unwrap();
+    assert!(
+        keys.chunks(4).any(|k| k[0] == 3072 && k[3] == 32631),
+        "{keys:?}"
+    );
 }
 
 #[tokio::test]

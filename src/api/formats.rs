@@ -119,11 +119,6 @@ pub fn choose(
     })
 }
 
-/// A number as JSON writes it: the shortest text that reads back to the same f64.
-fn number(x: f64) -> String {
-    serde_json::to_string(&x).unwrap_or_else(|_| "null".into())
-}
-
 /// The property names of a zone row, in column order; exceedance thresholds from the first zone
 /// (every zone of a request reports the same thresholds).
 fn columns(doc: &ResultsDocument) -> Vec<String> {
@@ -186,10 +181,8 @@ pub fn zone_counts_csv(doc: &ResultsDocument) -> Result<Vec<u8>, ApiError> {
             .into_iter()
             .map(|v| match v {
                 Value::String(s) => s,
-                Value::Number(n) => match n.as_f64() {
-                    Some(x) if n.is_f64() => number(x),
-                    _ => n.to_string(),
-                },
+                // serde_json writes numbers as the JSON output does: shortest round trip.
+                Value::Number(n) => n.to_string(),
                 other => other.to_string(),
             })
             .collect();

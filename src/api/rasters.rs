@@ -104,9 +104,10 @@ async fn read_body(body: Body, limit: u64) -> Result<Bytes, ApiError> {
             pointer: String::new(),
             detail: format!("the body is larger than this service's limit of {limit} bytes for a raster of this kind: coarsen or split the raster (a GeoTIFF may be as large as the cell limit allows)"),
         }),
-        Err(e) => Err(ApiError::MalformedJson {
+        // Not a JSON problem: the bytes themselves did not arrive (a GeoTIFF body too).
+        Err(e) => Err(ApiError::InvalidInput {
             pointer: String::new(),
-            detail: format!("the body could not be read: {e}"),
+            detail: format!("the body could not be read: {e}: send it again, whole"),
         }),
     }
 }

@@ -380,7 +380,9 @@ fn service_row() -> Result<GisRow, String> {
         return Err(format!("the service answered {status}: {doc}"));
     }
 
-    // The engine alone on the same decoded raster and zones.
+    // The engine alone on the same decoded raster and zones. The GeoTIFF is made again rather
+    // than kept: a kept copy would sit in the service run's peak, which the client's copy does
+    // not share in a real deployment.
     let tif = write_f32(&grid, &field_f32(w.width, w.height))?;
     let (raster, _) = raster_tiff(&tif, None, &limits).map_err(|e| e.to_string())?;
     drop(tif);
