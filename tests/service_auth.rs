@@ -190,3 +190,52 @@ async fn rasters_stay_with_the_key_that_posted_them() {
     assert_eq!(send(&router, post(BETA)).await.status, StatusCode::CREATED);
     assert_eq!(send(&router, execute(BETA)).await.status, StatusCode::OK);
 }
+
+#[tokio::test]
+async fn the_openapi_document_says_which_routes_take_a_key_and_what_they_answer() {
+    let spec: serde_json::Value = serde_json::from_str(zonetally::api::openapi_json()).unwrap();
+    assert_eq!(
+        spec["components"]["securitySchemes"]["api_key"]["scheme"],
+        "bearer"
+    );
+    let (_, router) = state_with(keyed(false));
+    let mut guarded = 0;
+    for (path, item) in spec["paths"].as_object().unwrap() {
+        for (method, op) in item.as_object().unwrap() {
+            let responses = op["responses"].as_object().unwrap();
+            if path == "/healthz" || path == "/readyz" {
+                assert!(op.get("security").is_none(), "{method} {path} needs no key");
+                continue;
+            }
+            // The key is optional in the document because it is off by default.
+            assert_eq!(
+                op["security"],
+                json!([{}, {"api_key": []}]),
+                "{method} {path}"
+            );
+            for status in ["401", "429", "504"] {
+                assert!(
+                    responses.contains_key(status),
+                    "{method} {path} lacks {status}"
+                );
+            }
+            if method == "post" {
+                for status in ["408", "413", "415", "503"] {
+                    assert!(
+                        responses.contains_key(status),
+                        "{method} {path} lacks {status}"
+                    );
+                }
+            }
+            // What the running service answers without a key is what the document lists.
+            let concrete = path
+                .replace("{processId}", "zone-counts")
+                .replace("{jobId}", "0")
+                .replace("{ref}", "0");
+            let r = call(&router, &method.to_uppercase(), &concrete, None).await;
+            assert_eq!(r.status, StatusCode::UNAUTHORIZED, "{method} {path}");
+            guarded += 1;
+        }
+    }
+    assert!(guarded >= 15, "only {guarded} operations seen");
+}

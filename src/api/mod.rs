@@ -87,13 +87,104 @@ fn routes() -> OpenApiRouter<AppState> {
 pub fn openapi_json() -> &'static str {
     static DOC: OnceLock<String> = OnceLock::new();
     DOC.get_or_init(|| {
-        let (_, api) = routes().split_for_parts();
+        let (_, mut api) = routes().split_for_parts();
+        guarded_responses(&mut api);
         let mut s = api
             .to_pretty_json()
             .unwrap_or_else(|e| format!("{{\"error\": \"{e}\"}}"));
         s.push('\n');
         s
     })
+}
+
+/// Documents what the middleware stack answers on every route, so that no handler has to list
+/// it: the optional bearer key (401, 429 past the key's rate), the request time limit (504), and
+/// for the routes that take a body its deadline (408), the body limit (413), content codings
+/// (415) and the memory budget (503). The health checks are never guarded by a key.
+fn guarded_responses(api: &mut utoipa::openapi::OpenApi) {
+    use utoipa::openapi::security::{
+        HttpAuthScheme, HttpBuilder, SecurityRequirement, SecurityScheme,
+    };
+    use utoipa::openapi::{ContentBuilder, Ref, RefOr, ResponseBuilder};
+
+    const KEY: &str = "api_key";
+    api.components
+        .get_or_insert_with(Default::default)
+        .add_security_scheme(
+            KEY,
+            SecurityScheme::Http(
+                HttpBuilder::new()
+                    .scheme(HttpAuthScheme::Bearer)
+                    .description(Some(
+                        "an API key, required only when the service runs with `--api-keys`",
+                    ))
+                    .build(),
+            ),
+        );
+    // Each answer is described once under `components/responses` and referenced from the routes.
+    let answers = [
+        ("401", "Unauthorized", "an API key is required (`--api-keys`) and none or an unknown one was sent"),
+        ("429", "RateLimited", "the key sent more requests than its rate (`--rate-limit`); `Retry-After` says when to retry"),
+        ("504", "RequestTimeout", "the request ran past `--request-timeout`"),
+        ("408", "BodyTimeout", "the body did not arrive within `--body-timeout`"),
+        ("413", "BodyTooLarge", "the body is larger than its limit"),
+        ("415", "NotAccepted", "the body's media type or content coding is not accepted"),
+        ("503", "OverBudget", "the memory budget (`--memory-budget`) cannot hold the body now; `Retry-After` says when to retry"),
+    ];
+    let components = api.components.get_or_insert_with(Default::default);
+    for (_, name, description) in answers {
+        components.responses.insert(
+            name.to_string(),
+            RefOr::T(
+                ResponseBuilder::new()
+                    .description(description)
+                    .content(
+                        "application/problem+json",
+                        ContentBuilder::new()
+                            .schema(Some(Ref::from_schema_name("Problem")))
+                            .build(),
+                    )
+                    .build(),
+            ),
+        );
+    }
+    let reference = |status: &str| {
+        let (_, name, _) = answers.iter().find(|(s, _, _)| *s == status)?;
+        Some(RefOr::Ref(Ref::new(format!(
+            "#/components/responses/{name}"
+        ))))
+    };
+    for (path, item) in api.paths.paths.iter_mut() {
+        let open = matches!(path.as_str(), "/healthz" | "/readyz");
+        for (with_body, op) in [
+            (false, item.get.as_mut()),
+            (true, item.post.as_mut()),
+            (false, item.delete.as_mut()),
+        ] {
+            let Some(op) = op else { continue };
+            let mut wanted: Vec<&str> = Vec::new();
+            if !open {
+                wanted.extend(["401", "429", "504"]);
+            }
+            if with_body {
+                wanted.extend(["408", "413", "415", "503"]);
+            }
+            for status in wanted {
+                if let (false, Some(answer)) = (
+                    op.responses.responses.contains_key(status),
+                    reference(status),
+                ) {
+                    op.responses.responses.insert(status.to_string(), answer);
+                }
+            }
+            if !open {
+                op.security = Some(vec![
+                    SecurityRequirement::default(),
+                    SecurityRequirement::new(KEY, Vec::<String>::new()),
+                ]);
+            }
+        }
+    }
 }
 
 async fn not_found(uri: Uri) -> ApiError {
