@@ -106,6 +106,11 @@ async fn a_page_of_no_jobs_is_refused_not_widened() {
     let r = get(&router, "/jobs?limit=0").await;
     assert_eq!(r.status, StatusCode::BAD_REQUEST);
     assert!(r.json()["detail"].as_str().unwrap().contains("from 1 to"));
+    // An empty value is refused too, rather than read as the default page (schemathesis found it).
+    for query in ["limit=", "offset=", "limit=5&limit="] {
+        let r = get(&router, &format!("/jobs?{query}")).await;
+        assert_eq!(r.status, StatusCode::BAD_REQUEST, "{query}");
+    }
     assert_eq!(get(&router, "/jobs?limit=1").await.status, StatusCode::OK);
 }
 

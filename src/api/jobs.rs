@@ -105,7 +105,13 @@ fn number(
     default: usize,
     (min, max): (usize, usize),
 ) -> Result<usize, ApiError> {
-    match values(pairs, name).last() {
+    // An empty `limit=` is refused, not read as the default: the client meant something.
+    match pairs
+        .iter()
+        .rev()
+        .find(|(k, _)| k == name)
+        .map(|(_, v)| v.trim())
+    {
         None => Ok(default),
         Some(v) => match v.parse::<usize>() {
             Ok(n) if (min..=max).contains(&n) => Ok(n),
@@ -133,7 +139,7 @@ fn visible(
 #[utoipa::path(get, path = "/jobs", tag = "ogc",
     params(("processID" = Option<String>, Query, description = "only jobs of these processes (comma-separated)"),
            ("status" = Option<String>, Query, description = "only jobs with these statuses (comma-separated)"),
-           ("limit" = Option<usize>, Query, description = "page size, 1 to 1000 (default 10)"),
+           ("limit" = Option<usize>, Query, minimum = 1, maximum = 1000, description = "page size, 1 to 1000 (default 10)"),
            ("offset" = Option<usize>, Query, description = "jobs to skip (paging links carry it)")),
     responses((status = 200, description = "the jobs held, newest first", body = JobList),
               (status = 400, description = "bad query parameter", body = Problem, content_type = "application/problem+json")))]
