@@ -330,3 +330,39 @@ fn labels_and_outlines_agree() {
     .unwrap_err();
     assert!(matches!(err, GeoError::NoTransform { .. }));
 }
+
+#[test]
+fn inputs_the_fuzzer_found_are_refused_without_a_panic() {
+    // Every file under tests/fuzz/regressions/geotiff once crashed the `geotiff` fuzz target.
+    // Our reader catches a panic of the tiff crate, but the crate itself must not panic either
+    // (empty-sample-format.tif: a SampleFormat tag of count 0 indexed an empty list in tiff
+    // 0.10.3; 0.11 refuses it).
+    let dir =
+        std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fuzz/regressions/geotiff");
+    let mut seen = 0;
+    for entry in std::fs::read_dir(&dir).unwrap() {
+        let path = entry.unwrap().path();
+        let bytes = std::fs::read(&path).unwrap();
+        let direct = std::panic::catch_unwind(|| {
+            tiff::decoder::Decoder::new(std::io::Cursor::new(&bytes[..])).map(|_| ())
+        });
+        assert!(
+            direct.is_ok(),
+            "{}: the tiff crate panicked",
+            path.display()
+        );
+        let err = geotiff::read(&bytes, &LIMITS).unwrap_err();
+        assert!(
+            matches!(
+                err,
+                GeoError::TiffDecode { .. }
+                    | GeoError::TiffUnsupported { .. }
+                    | GeoError::TiffTag { .. }
+            ),
+            "{}: {err:?}",
+            path.display()
+        );
+        seen += 1;
+    }
+    assert!(seen >= 1);
+}

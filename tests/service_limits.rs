@@ -61,7 +61,7 @@ async fn the_store_refuses_jobs_past_its_count_and_byte_caps() {
             ..config()
         },
         Config {
-            max_job_bytes: 1,
+            max_job_bytes: Some(1),
             ..config()
         },
     ] {
@@ -116,10 +116,16 @@ async fn a_page_of_no_jobs_is_refused_not_widened() {
 
 #[tokio::test]
 async fn queued_jobs_are_held_to_the_memory_budget_and_give_it_back() {
-    // Each job: 2,000 rects of 50x50 cells, about 20 MB of cell lists once expanded (the
-    // flood that once held 330 MB per queued job, scaled down). The budget fits three.
+    // Each job: 2,000 overlapping rects of 50x50 cells, 20 MB of cell lists once expanded
+    // (the flood that once held 330 MB per queued job, scaled down), charged with the 80 MB of
+    // shared and fringe lists it needs to run and its results: about 113 MB. The budget's part
+    // for request data, 370 MiB once the caches and results have theirs, fits three, beside the
+    // charge for decoding the next body (its 3.2 MB, nine times).
     let (state, router) = state_with(Config {
-        memory_budget: Some(100 << 20),
+        memory_budget: Some(420 << 20),
+        raster_cache_bytes: Some(20 << 20),
+        normaliser_cache_bytes: Some(10 << 20),
+        max_job_bytes: Some(20 << 20),
         ..config()
     });
     let zones: Vec<_> = (0..2000)
@@ -150,7 +156,7 @@ async fn queued_jobs_are_held_to_the_memory_budget_and_give_it_back() {
     assert_eq!(
         accepted.len(),
         3,
-        "three jobs of about 30 MB fit in 100 MiB: {:?}",
+        "three jobs of about 113 MB fit in 370 MiB: {:?}",
         refused.body
     );
     assert_eq!(refused.status, StatusCode::SERVICE_UNAVAILABLE);
@@ -173,19 +179,41 @@ async fn queued_jobs_are_held_to_the_memory_budget_and_give_it_back() {
 
 #[tokio::test]
 async fn a_body_that_does_not_fit_the_budget_is_refused_before_it_is_read() {
-    let (state, router) = state_with(Config {
-        memory_budget: Some(1 << 20),
-        ..config()
-    });
     let big = json!({"inputs": {
         "raster": service_support::uneven_raster(400, 400),
         "zones": [{"id": "all", "rect": {"row": 0, "col": 0, "rows": 400, "cols": 400}}],
         "evidence": {"total": 50_000}
     }});
+    // A JSON body of 3 MB may hold nine times that while decoded: more than a 1 MiB budget
+    // could ever give, so 413 with what to do instead, not a 503 to retry forever.
+    let (state, router) = state_with(Config {
+        memory_budget: Some(1 << 20),
+        ..config()
+    });
     let r = post_json(&router, ZC, &big, None).await;
-    assert_eq!(r.status, StatusCode::SERVICE_UNAVAILABLE, "{:?}", r.body);
-    assert_eq!(r.json()["type"], "/problems/memory-budget");
+    assert_eq!(r.status, StatusCode::PAYLOAD_TOO_LARGE, "{:?}", r.body);
+    let detail = r.json()["detail"].as_str().unwrap().to_string();
+    assert!(
+        detail.contains("--memory-budget") && detail.contains("GeoTIFF"),
+        "{detail}"
+    );
     assert_eq!(state.budget().used(), 0);
     let small = post_json(&router, ZC, &json!({"inputs": tea_inputs()}), None).await;
     assert_eq!(small.status, StatusCode::OK);
+
+    // With room for it, but not while other requests hold most of the budget: 503 to retry.
+    let (state, router) = state_with(Config {
+        memory_budget: Some(256 << 20),
+        ..config()
+    });
+    let limit = state.budget().limit();
+    let held = state.budget().charge(limit - (1 << 20)).unwrap();
+    let r = post_json(&router, ZC, &big, None).await;
+    assert_eq!(r.status, StatusCode::SERVICE_UNAVAILABLE, "{:?}", r.body);
+    assert_eq!(r.json()["type"], "/problems/memory-budget");
+    assert!(r.header("retry-after").is_some());
+    drop(held);
+    let r = post_json(&router, ZC, &big, None).await;
+    assert_eq!(r.status, StatusCode::OK, "{:?}", r.body);
+    assert_eq!(state.budget().used(), 0);
 }

@@ -85,9 +85,16 @@ pub async fn refuse_encoded(req: Request, next: Next) -> Response {
     resp
 }
 
+/// What decoding a JSON body may hold, per body byte: its numbers parsed into the wire types,
+/// 16 bytes each (`Option<f64>`) for as little as 2 bytes of text ("0,"). The body's own bytes
+/// come on top.
+pub const JSON_DECODE_FACTOR: u64 = 8;
+
 /// Middleware charging a request's body to the memory budget while the request is served: its
 /// `Content-Length` (capped at the largest body the route reads, which refuses more), or that
-/// largest body when no length is declared. A charge that does not fit gets 503.
+/// largest body when no length is declared, and for JSON what decoding it may hold
+/// (`JSON_DECODE_FACTOR` per byte). A charge that does not fit gets 503, or 413 when it could
+/// never fit the budget's part for request data.
 pub async fn charge_body(State(state): State<AppState>, req: Request, next: Next) -> Response {
     if !has_body(&req) {
         return next.run(req).await;
@@ -104,7 +111,30 @@ pub async fn charge_body(State(state): State<AppState>, req: Request, next: Next
             .and_then(|v| v.to_str().ok())
             .and_then(|v| v.trim().parse::<u64>().ok())
     });
-    let bytes = declared.map_or(largest, |n| n.min(largest));
+    let body = declared.map_or(largest, |n| n.min(largest));
+    let json = req
+        .headers()
+        .get(header::CONTENT_TYPE)
+        .and_then(|v| v.to_str().ok())
+        .is_some_and(|v| {
+            v.trim_start()
+                .to_ascii_lowercase()
+                .starts_with("application/json")
+        });
+    let bytes = match json {
+        true => body.saturating_mul(1 + JSON_DECODE_FACTOR),
+        false => body,
+    };
+    if bytes > state.budget().limit() {
+        return ApiError::TooLarge {
+            pointer: String::new(),
+            detail: format!(
+                "a JSON body of {body} bytes may hold {bytes} bytes while it is decoded, more than this service's {} bytes for request data (--memory-budget): send the raster as a GeoTIFF (POST /rasters, then refer to it) or split the request",
+                state.budget().limit()
+            ),
+        }
+        .into_response();
+    }
     match state.charge(bytes) {
         Ok(charge) => {
             let resp = next.run(req).await;

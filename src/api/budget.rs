@@ -6,8 +6,12 @@
 //! does not fit is refused with 503 and `Retry-After`, so a flood of large requests is turned
 //! away instead of growing the process until the kernel kills it. Decoding itself runs at most
 //! `--max-decodes` at a time, each bounded by the cell, zone and vertex limits, so the peak
-//! stays below the budget plus `--max-decodes` of the largest decodes. Results kept for polling
-//! are bounded apart (`--max-job-bytes`), and so are the caches (their own byte limits).
+//! stays below the budget plus `--max-decodes` of the largest decodes.
+//!
+//! The budget is the process's whole allowance for its work, shared out once at start-up
+//! (`MemoryPlan`): the raster cache, the normaliser cache and the results kept for polling each
+//! get a fixed part, bounded by their own byte limits, and request data may be charged up to
+//! what is left. So the parts cannot together outgrow the budget, whatever the traffic.
 
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::Arc;
@@ -85,6 +89,51 @@ impl MemoryBudget {
     }
 }
 
+/// The memory budget shared out: each part is a byte limit of its own, and the parts sum to at
+/// most `total`.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct MemoryPlan {
+    pub total: u64,
+    pub raster_cache: u64,
+    pub normaliser_cache: u64,
+    pub job_results: u64,
+    /// What request data may be charged: the rest.
+    pub requests: u64,
+}
+
+impl MemoryPlan {
+    /// Shares out `total`: the parts given are taken as they are, the others by default a
+    /// quarter (raster cache), a sixteenth (normalisers) and a quarter (results). Request data
+    /// must keep at least an eighth, else the plan is refused with the flags to change.
+    pub fn new(
+        total: u64,
+        raster_cache: Option<u64>,
+        normaliser_cache: Option<u64>,
+        job_results: Option<u64>,
+    ) -> Result<MemoryPlan, String> {
+        let raster_cache = raster_cache.unwrap_or(total / 4);
+        let normaliser_cache = normaliser_cache.unwrap_or(total / 16);
+        let job_results = job_results.unwrap_or(total / 4);
+        let parts = raster_cache
+            .saturating_add(normaliser_cache)
+            .saturating_add(job_results);
+        let requests = total.saturating_sub(parts);
+        if requests < total / 8 {
+            return Err(format!(
+                "--raster-cache-bytes {raster_cache}, --normaliser-cache-bytes {normaliser_cache} and --max-job-bytes {job_results} take {parts} of the memory budget's {total} bytes, leaving {requests} for requests (at least {} needed): lower them or raise --memory-budget",
+                total / 8
+            ));
+        }
+        Ok(MemoryPlan {
+            total,
+            raster_cache,
+            normaliser_cache,
+            job_results,
+            requests,
+        })
+    }
+}
+
 /// The default budget: half the container's memory limit (cgroup v2 `memory.max`, or v1
 /// `memory.limit_in_bytes`) when there is one, else half the machine's memory, else 4 GiB.
 pub fn default_budget() -> u64 {
@@ -127,6 +176,29 @@ mod tests {
         assert_eq!(budget.used(), 40);
         drop(b);
         assert_eq!(budget.used(), 0);
+    }
+
+    #[test]
+    fn the_plan_shares_out_the_budget_and_refuses_parts_that_do_not_fit() {
+        let plan = MemoryPlan::new(1600, None, None, None).unwrap();
+        assert_eq!(
+            (
+                plan.raster_cache,
+                plan.normaliser_cache,
+                plan.job_results,
+                plan.requests
+            ),
+            (400, 100, 400, 700)
+        );
+        let given = MemoryPlan::new(1600, Some(100), Some(0), Some(500)).unwrap();
+        assert_eq!(given.requests, 1000);
+        let err = MemoryPlan::new(1600, Some(1000), None, Some(500)).unwrap_err();
+        assert!(
+            err.contains("--raster-cache-bytes 1000") && err.contains("--memory-budget"),
+            "{err}"
+        );
+        // Parts beyond the whole budget do not wrap around.
+        assert!(MemoryPlan::new(1600, Some(u64::MAX), None, None).is_err());
     }
 
     #[test]

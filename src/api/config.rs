@@ -6,6 +6,7 @@ use std::time::Duration;
 
 use clap::Parser;
 
+use super::budget::{default_budget, MemoryPlan};
 use super::decode::Limits;
 
 #[derive(Clone, Debug, Parser)]
@@ -36,12 +37,13 @@ pub struct Config {
     /// Most jobs held at once, finished ones included; submissions beyond get 503.
     #[arg(long, env = "ZONETALLY_MAX_JOBS", default_value_t = 10_000)]
     pub max_jobs: usize,
-    /// Most bytes held by job records and their results; submissions beyond get 503.
-    #[arg(long, env = "ZONETALLY_MAX_JOB_BYTES", default_value_t = 1 << 30)]
-    pub max_job_bytes: u64,
-    /// Bytes of request data held at once (bodies being read, queued and running requests);
-    /// beyond it requests get 503. Default: half the container's memory limit, else half the
-    /// machine's memory.
+    /// Most bytes held by job records and their results, taken out of the memory budget;
+    /// submissions beyond get 503. Default: a quarter of the budget.
+    #[arg(long, env = "ZONETALLY_MAX_JOB_BYTES")]
+    pub max_job_bytes: Option<u64>,
+    /// Bytes of memory the process may hold for its work: request data (bodies being read,
+    /// queued and running requests), results kept for polling, and the caches; requests beyond
+    /// get 503. Default: half the container's memory limit, else half the machine's memory.
     #[arg(long, env = "ZONETALLY_MEMORY_BUDGET")]
     pub memory_budget: Option<u64>,
     /// Requests decoded at once (0: one per core); more wait their turn.
@@ -67,12 +69,14 @@ pub struct Config {
         default_value_t = 10_000_000
     )]
     pub max_exceedance_values: u64,
-    /// Bytes of rasters kept for reuse and for `{"ref": ...}`.
-    #[arg(long, env = "ZONETALLY_RASTER_CACHE_BYTES", default_value_t = 1 << 30)]
-    pub raster_cache_bytes: u64,
-    /// Bytes of normalisers kept, keyed by (raster hash, observed total).
-    #[arg(long, env = "ZONETALLY_NORMALISER_CACHE_BYTES", default_value_t = 256 << 20)]
-    pub normaliser_cache_bytes: u64,
+    /// Bytes of rasters kept for reuse and for `{"ref": ...}`, taken out of the memory budget.
+    /// Default: a quarter of the budget.
+    #[arg(long, env = "ZONETALLY_RASTER_CACHE_BYTES")]
+    pub raster_cache_bytes: Option<u64>,
+    /// Bytes of normalisers kept, keyed by (raster hash, observed total), taken out of the
+    /// memory budget. Default: a sixteenth of the budget.
+    #[arg(long, env = "ZONETALLY_NORMALISER_CACHE_BYTES")]
+    pub normaliser_cache_bytes: Option<u64>,
     /// Largest request body, in bytes.
     #[arg(long, env = "ZONETALLY_MAX_BODY_BYTES", default_value_t = 64 << 20)]
     pub max_body_bytes: usize,
@@ -152,7 +156,7 @@ impl Default for Config {
             job_ttl: 3600.0,
             job_timeout: 3600.0,
             max_jobs: 10_000,
-            max_job_bytes: 1 << 30,
+            max_job_bytes: None,
             max_exceedance_values: 10_000_000,
             memory_budget: None,
             api_keys: None,
@@ -160,8 +164,8 @@ impl Default for Config {
             rate_limit: 0,
             rate_burst: 0,
             max_decodes: 0,
-            raster_cache_bytes: 1 << 30,
-            normaliser_cache_bytes: 256 << 20,
+            raster_cache_bytes: None,
+            normaliser_cache_bytes: None,
             max_body_bytes: 64 << 20,
             max_cells: 25_000_000,
             max_zones: 200_000,
@@ -196,13 +200,22 @@ impl Config {
             max_exceedance_values: self.max_exceedance_values,
         }
     }
-    /// What the job manager holds jobs to.
-    pub fn job_limits(&self) -> crate::jobs::JobLimits {
+    /// How the memory budget is shared out; an error names the flags that do not fit.
+    pub fn memory_plan(&self) -> Result<MemoryPlan, String> {
+        MemoryPlan::new(
+            self.memory_budget.unwrap_or_else(default_budget),
+            self.raster_cache_bytes,
+            self.normaliser_cache_bytes,
+            self.max_job_bytes,
+        )
+    }
+    /// What the job manager holds jobs to, with results bounded by `results_bytes`.
+    pub fn job_limits(&self, results_bytes: u64) -> crate::jobs::JobLimits {
         crate::jobs::JobLimits {
             ttl: self.job_ttl(),
             timeout: (self.job_timeout > 0.0).then(|| secs(self.job_timeout)),
             max_held: self.max_jobs,
-            max_held_bytes: self.max_job_bytes,
+            max_held_bytes: results_bytes,
         }
     }
     pub fn job_ttl(&self) -> Duration {

@@ -36,6 +36,11 @@ pub struct Readiness {
     /// Free admission slots of the jobs' pool.
     pub queue_free: usize,
     pub jobs: usize,
+    /// The process's memory budget (`--memory-budget`), in bytes.
+    pub memory_budget: u64,
+    /// The budget's part for request data, and how much of it is charged now.
+    pub request_bytes: u64,
+    pub request_bytes_used: u64,
 }
 
 #[utoipa::path(get, path = "/readyz", tag = "operations",
@@ -61,6 +66,9 @@ pub async fn readyz(State(state): State<AppState>) -> Result<Json<Readiness>, Ap
         },
         queue_free: pool.capacity.saturating_sub(pool.queued + pool.running),
         jobs: state.jobs().counts().total(),
+        memory_budget: state.memory_plan().total,
+        request_bytes: state.budget().limit(),
+        request_bytes_used: state.budget().used(),
     }))
 }
 

@@ -4,7 +4,7 @@
 //! Processes never see this: `context()` hands them the narrow `processes::Context`.
 
 use super::auth::Keys;
-use super::budget::{default_budget, Charge, MemoryBudget};
+use super::budget::{Charge, MemoryBudget, MemoryPlan};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 
@@ -29,6 +29,8 @@ struct Inner {
     rates: Option<governor::DefaultKeyedRateLimiter<String>>,
     /// Synchronous requests' own pool; `None` when they share the jobs' pool.
     sync_pool: Option<Pool>,
+    memory: MemoryPlan,
+    /// The part of the memory budget that request data charges (`memory.requests`).
     budget: Arc<MemoryBudget>,
     decodes: Arc<tokio::sync::Semaphore>,
     jobs: Jobs,
@@ -42,8 +44,13 @@ impl AppState {
     /// The embedded set-up: an in-memory job store.
     pub fn new(config: Config) -> Result<AppState, String> {
         let pool = Pool::new(config.threads, config.queue)?;
-        let jobs = Jobs::in_memory(pool, Arc::new(JobFailures), config.job_limits());
-        let caches = Caches::new(config.raster_cache_bytes, config.normaliser_cache_bytes)
+        let memory = config.memory_plan()?;
+        let jobs = Jobs::in_memory(
+            pool,
+            Arc::new(JobFailures),
+            config.job_limits(memory.job_results),
+        );
+        let caches = Caches::new(memory.raster_cache, memory.normaliser_cache)
             .with_data_dir(config.data_dir.clone());
         let sync_pool = match config.shared_pool {
             true => None,
@@ -56,7 +63,7 @@ impl AppState {
                 let burst = std::num::NonZeroU32::new(config.rate_burst).unwrap_or(rate);
                 governor::RateLimiter::keyed(governor::Quota::per_second(rate).allow_burst(burst))
             });
-        let budget = MemoryBudget::new(config.memory_budget.unwrap_or_else(default_budget));
+        let budget = MemoryBudget::new(memory.requests);
         let decodes = match config.max_decodes {
             0 => std::thread::available_parallelism().map_or(2, |n| n.get()),
             n => n,
@@ -64,6 +71,7 @@ impl AppState {
         Ok(AppState {
             inner: Arc::new(Inner {
                 config,
+                memory,
                 keys,
                 rates,
                 sync_pool,
@@ -92,7 +100,12 @@ impl AppState {
         Some(wait.as_secs_f64().ceil().max(1.0) as u64)
     }
 
-    /// The memory budget requests charge.
+    /// How the memory budget was shared out at start-up.
+    pub fn memory_plan(&self) -> &MemoryPlan {
+        &self.inner.memory
+    }
+
+    /// The part of the memory budget that request data charges.
     pub fn budget(&self) -> &Arc<MemoryBudget> {
         &self.inner.budget
     }

@@ -128,11 +128,22 @@ impl Prepared for Counts {
     }
     fn held_bytes(&self) -> u64 {
         // Four bytes per zone cell; per zone, a summary and its JSON (about 64 bytes a number)
-        // with each threshold, and a pmf of up to PMF_ESTIMATE values.
+        // with each threshold, and a pmf of up to PMF_ESTIMATE values. Running adds the
+        // executor's membership: 12 bytes per raster cell, and for overlapping zones the shared
+        // and fringe lists, WORKING_PER_SHARED_CELL bytes per zone cell (a job of 2,000
+        // overlapping 100x100 rects, 80 MB of cell lists, peaked 265 MB above them).
         const PMF_ESTIMATE: u64 = 64;
+        const WORKING_PER_SHARED_CELL: u64 = 16;
         let zones = self.decoded.zones.entries.len() as u64;
         let numbers = 16 + self.decoded.settings.thresholds().len() as u64 * 2 + PMF_ESTIMATE;
-        self.decoded.zones.cell_count() * 4 + zones * numbers * 64
+        let cells = self.decoded.zones.cell_count();
+        let working = self.decoded.raster.len() as u64 * 12
+            + if self.plan.overlapping {
+                cells * WORKING_PER_SHARED_CELL
+            } else {
+                0
+            };
+        cells * 4 + working + zones * numbers * 64
     }
     fn run(self: Box<Self>, ctx: &Context, control: &Control) -> Result<Output, ApiError> {
         let doc = compute(&self, ctx, control).map_err(run_error)?;
