@@ -2,6 +2,9 @@
 
 use clap::{Parser, Subcommand};
 
+#[global_allocator]
+static ALLOCATOR: tikv_jemallocator::Jemalloc = tikv_jemallocator::Jemalloc;
+
 #[derive(Parser)]
 #[command(
     name = "zonetally",
