@@ -89,12 +89,40 @@ pub fn openapi_json() -> &'static str {
     DOC.get_or_init(|| {
         let (_, mut api) = routes().split_for_parts();
         guarded_responses(&mut api);
-        let mut s = api
-            .to_pretty_json()
+        let mut s = serde_json::to_value(&api)
+            .map(|mut doc| {
+                unsigned_ranges(&mut doc);
+                doc
+            })
+            .and_then(|doc| serde_json::to_string_pretty(&doc))
             .unwrap_or_else(|e| format!("{{\"error\": \"{e}\"}}"));
         s.push('\n');
         s
     })
+}
+
+/// Unsigned integers as the wire reads them: utoipa names them `u-int32` and so on, with no upper
+/// end, and clients would otherwise take them for signed 32-bit values; here each gets the usual
+/// name (`uint32`) and its maximum.
+fn unsigned_ranges(value: &mut serde_json::Value) {
+    match value {
+        serde_json::Value::Object(map) => {
+            let bounds = match map.get("format").and_then(|f| f.as_str()) {
+                Some("u-int8") => Some(("uint8", u64::from(u8::MAX))),
+                Some("u-int16") => Some(("uint16", u64::from(u16::MAX))),
+                Some("u-int32") => Some(("uint32", u64::from(u32::MAX))),
+                Some("u-int64") => Some(("uint64", u64::MAX)),
+                _ => None,
+            };
+            if let Some((name, max)) = bounds {
+                map.insert("format".into(), name.into());
+                map.entry("maximum").or_insert(max.into());
+            }
+            map.values_mut().for_each(unsigned_ranges);
+        }
+        serde_json::Value::Array(items) => items.iter_mut().for_each(unsigned_ranges),
+        _ => {}
+    }
 }
 
 /// Documents what the middleware stack answers on every route, so that no handler has to list
