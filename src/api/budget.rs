@@ -1,12 +1,14 @@
 //! The process's memory budget in bytes, and the bound on concurrent decodes.
 //!
 //! Everything that holds request data for a while charges the budget before holding it: a body
-//! while it is read (its `Content-Length`, or the largest body allowed when it has none), and a
+//! while it is read and decoded (its `Content-Length`, or the largest body allowed when it has
+//! none; for JSON also what parsing it may hold, `body::JSON_DECODE_FACTOR` per byte), and a
 //! decoded request while it waits in the queue and runs (`Prepared::held_bytes`). A charge that
 //! does not fit is refused with 503 and `Retry-After`, so a flood of large requests is turned
 //! away instead of growing the process until the kernel kills it. Decoding itself runs at most
-//! `--max-decodes` at a time, each bounded by the cell, zone and vertex limits, so the peak
-//! stays below the budget plus `--max-decodes` of the largest decodes.
+//! `--max-decodes` at a time; what a decode expands beyond its body (rectangles into cell lists,
+//! GeoTIFF pixels) is charged when it ends, so the peak stays below the budget plus
+//! `--max-decodes` of those expansions, each bounded by the cell, zone and vertex limits.
 //!
 //! The budget is the process's whole allowance for its work, shared out once at start-up
 //! (`MemoryPlan`): the raster cache, the normaliser cache and the results kept for polling each
