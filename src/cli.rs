@@ -124,9 +124,7 @@ fn request_of(args: &EvalArgs) -> Result<EvalRequest, CliError> {
         raster,
         zones,
         zone_options,
-        evidence: EvidenceSpec {
-            total: args.total.unwrap_or_default(),
-        },
+        evidence: EvidenceSpec::exact(args.total.unwrap_or_default()),
         summaries: SummariesSpec {
             interval: args.interval,
             exceedance: (!args.exceedance.is_empty()).then(|| args.exceedance.clone()),

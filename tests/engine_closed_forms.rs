@@ -175,7 +175,7 @@ fn lady_tasting_tea_through_the_binary() {
     );
     assert_eq!(zone["exceedance"][0]["k"], 3);
     // reference: closed form, the total of 8 fair cells is Binomial(8, 1/2): P(total = 4) = 70/256
-    let log_eq = doc["total"]["log_p_equal"].as_f64().unwrap();
+    let log_eq = doc["total"]["log_likelihood"].as_f64().unwrap();
     let want = (70.0f64 / 256.0).ln();
     assert!(
         (log_eq - want).abs() <= 1e-12,

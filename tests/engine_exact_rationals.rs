@@ -12,7 +12,7 @@ use engine_support::*;
 use num_bigint::{BigInt, BigUint};
 use num_rational::BigRational;
 use num_traits::{Signed, ToPrimitive, Zero};
-use zonetally::engine::{self, Control, Normaliser, Raster, Settings, Zone};
+use zonetally::engine::{self, Control, Evidence, Form, Normaliser, Raster, Settings, Zone};
 
 /// Exact conditional laws of a set of zones for every possible total, by enumeration.
 struct Enumerated {
@@ -363,9 +363,9 @@ fn total_check_is_exact_on_the_slope() {
         let eq = prob(&by_total[m]).to_f64().unwrap();
         // ln of a probability known to 1e-9 relative is known to 1e-9 absolute.
         assert!(
-            (n.check.log_p_equal - eq.ln()).abs() <= REL_TOL,
+            (n.check.log_likelihood - eq.ln()).abs() <= REL_TOL,
             "ln P(total = {m}): {} vs {}",
-            n.check.log_p_equal,
+            n.check.log_likelihood,
             eq.ln()
         );
     }
@@ -431,5 +431,244 @@ fn error_bound_covers_the_exact_error() {
                 );
             }
         }
+    }
+}
+
+/// A named evidence and its exact weight w(m) = P(observation | total = m) in rationals.
+type Stated = (String, Evidence, Box<dyn Fn(u64) -> BigRational>);
+
+/// The forms of evidence the engine takes, each with its exact weight.
+fn forms(raster: &Raster) -> Vec<Stated> {
+    let stats = *raster.stats();
+    let (lo, hi) = (stats.certain, stats.certain + stats.free);
+    let mut out: Vec<Stated> = Vec::new();
+    for (a, b) in [
+        (lo, hi),
+        (lo + 2, lo + 5),
+        (hi - 3, hi + 4),
+        (0, lo + 1),
+        (lo + 4, lo + 4),
+    ] {
+        let w = move |m: u64| if m >= a && m <= b { rone() } else { rzero() };
+        out.push((
+            format!("range [{a}, {b}]"),
+            Evidence::range(a, b, raster).unwrap(),
+            Box::new(w),
+        ));
+    }
+    for (d, rate) in [(3u64, 0.85), (5, 0.5), (lo, 0.3), (7, 0.999), (6, 1.0)] {
+        // w(m) = C(m, d) rate^d (1 - rate)^(m - d), with rate the exact rational of the f64.
+        let r = rat(rate);
+        let w = move |m: u64| {
+            if m < d {
+                return rzero();
+            }
+            let mut v = BigRational::from_integer(binom(m, d));
+            for _ in 0..d {
+                v *= &r;
+            }
+            for _ in 0..m - d {
+                v *= rone() - &r;
+            }
+            v
+        };
+        out.push((
+            format!("{d} detected at {rate}"),
+            Evidence::detected(d, rate, raster).unwrap(),
+            Box::new(w),
+        ));
+    }
+    let values = vec![0.3, 0.0, 1.0, 0.25, 1e-3, 0.6, 0.0, 0.125];
+    let offset = lo + 1;
+    let kept = values.clone();
+    out.push((
+        format!("likelihood from {offset}"),
+        Evidence::likelihood(offset, values, raster).unwrap(),
+        Box::new(move |m: u64| {
+            if m < offset || m >= offset + kept.len() as u64 {
+                rzero()
+            } else {
+                rat(kept[(m - offset) as usize])
+            }
+        }),
+    ));
+    out
+}
+
+#[test]
+fn every_form_of_evidence_is_exact_on_the_slope() {
+    let raster = slope();
+    let stats = *raster.stats();
+    let zones = [
+        ("upper", vec![0u32, 1, 2, 3, 4]),
+        ("overlap", vec![3, 4, 8, 9, 13, 14]),
+        ("single", vec![12]),
+        ("all", valid_cells(&raster)),
+    ];
+    let cell_lists: Vec<Vec<u32>> = zones.iter().map(|(_, c)| c.clone()).collect();
+    let exact = Enumerated::new(&raster, &cell_lists);
+    let engine_zones: Vec<Zone> = zones
+        .iter()
+        .map(|(id, c)| Zone::new(*id, c.clone(), &raster).unwrap())
+        .collect();
+    let all = zones.len() - 1;
+    let prior_of = |m: u64| -> BigUint { exact.weights[m as usize][all].iter().sum() };
+    let everything: BigUint = (0..exact.weights.len() as u64).map(prior_of).sum();
+    let prior =
+        |m: u64| BigRational::new(BigInt::from(prior_of(m)), BigInt::from(everything.clone()));
+    let settings = Settings::new(0.9, vec![1, 3], 1e-13, true).unwrap();
+    let plan = engine::plan(&raster, &engine_zones);
+    let totals = stats.certain..=stats.certain + stats.free;
+    for (name, evidence, w) in forms(&raster) {
+        let control = Control::new();
+        let n = Normaliser::of(&raster, &evidence, &control).unwrap();
+        let got = engine::execute(&plan, &raster, &engine_zones, &n, &settings, &control).unwrap();
+        for (zi, z) in got.iter().enumerate() {
+            let size = zones[zi].1.len();
+            // reference: exhaustive enumeration in exact arithmetic, the zone law being the
+            // mixture sum_m w(m) P(N_S = k, N_T = m) / sum_m w(m) P(N_T = m)
+            let mut want = vec![rzero(); size + 1];
+            for m in totals.clone() {
+                let wm = w(m);
+                for (k, x) in exact.weights[m as usize][zi].iter().enumerate() {
+                    want[k] += &wm * BigRational::from_integer(BigInt::from(x.clone()));
+                }
+            }
+            let sum: BigRational = want.iter().sum();
+            let want: Vec<BigRational> = want.iter().map(|x| x / &sum).collect();
+            let dense = dense_pmf(z.offset, &z.pmf, size);
+            let mut l1 = rzero();
+            for k in 0..=size {
+                assert_prob_exact(
+                    dense[k],
+                    &want[k],
+                    &format!("{name}, zone `{}`: P(N = {k})", z.id),
+                );
+                l1 += (rat(dense[k]) - &want[k]).abs();
+            }
+            assert!(
+                l1 <= rat(z.error_bound),
+                "{name}, zone `{}`: L1 error {:e} above the bound {:e}",
+                z.id,
+                l1.to_f64().unwrap(),
+                z.error_bound
+            );
+            assert!(
+                z.error_bound <= 1e-13,
+                "{name}, zone `{}`: bound {:e}",
+                z.id,
+                z.error_bound
+            );
+            for &(k, p) in &z.exceedance {
+                let tail: BigRational = want.iter().skip(k as usize).sum();
+                assert_prob_exact(p, &tail, &format!("{name}, zone `{}`: P(N >= {k})", z.id));
+            }
+        }
+        // The posterior of the true total. reference: exhaustive enumeration, w(m) P(N_T = m)
+        // normalised
+        let weight: Vec<BigRational> = totals.clone().map(|m| w(m) * prior(m)).collect();
+        let evidence_mass: BigRational = weight.iter().sum();
+        let post = n
+            .check
+            .posterior
+            .as_ref()
+            .expect("a posterior of the total");
+        let dense = dense_pmf(
+            post.offset,
+            &post.pmf,
+            stats.certain as usize + stats.free as usize,
+        );
+        let mut l1 = rzero();
+        for (i, m) in totals.clone().enumerate() {
+            let want = &weight[i] / &evidence_mass;
+            assert_prob_exact(
+                dense[m as usize],
+                &want,
+                &format!("{name}: P(total = {m} | evidence)"),
+            );
+            l1 += (rat(dense[m as usize]) - want).abs();
+        }
+        assert!(
+            l1 <= rat(post.error_bound),
+            "{name}: posterior of the total, L1 above its bound"
+        );
+        // ln P(observation) under the prior: known to 1e-9 relative, so to 1e-9 absolute in ln.
+        let want_ln = evidence_mass.to_f64().unwrap().ln();
+        assert!(
+            (n.check.log_likelihood - want_ln).abs() <= REL_TOL,
+            "{name}: ln P(observation) {} vs {want_ln}",
+            n.check.log_likelihood
+        );
+        // Tail probabilities: for a range or a likelihood, P(total <= largest allowed) and
+        // P(total >= smallest allowed); for a detected count, P(D <= d) and P(D >= d) with
+        // D | N = m ~ Binomial(m, rate) (thinning, exact).
+        let (slo, shi) = evidence.support();
+        let (at_most, at_least) = match evidence.form() {
+            Form::Detected {
+                detected,
+                detection,
+            } => {
+                let r = rat(*detection);
+                let (mut le, mut ge) = (rzero(), rzero());
+                for m in totals.clone() {
+                    for j in 0..=m {
+                        let mut b = BigRational::from_integer(binom(m, j));
+                        for _ in 0..j {
+                            b *= &r;
+                        }
+                        for _ in 0..m - j {
+                            b *= rone() - &r;
+                        }
+                        let x = &b * prior(m);
+                        if j <= *detected {
+                            le += &x;
+                        }
+                        if j >= *detected {
+                            ge += &x;
+                        }
+                    }
+                }
+                (le, ge)
+            }
+            _ => (
+                totals.clone().filter(|&m| m <= shi).map(prior).sum(),
+                totals.clone().filter(|&m| m >= slo).map(prior).sum(),
+            ),
+        };
+        assert_prob_exact(n.check.p_at_most, &at_most, &format!("{name}: P(at most)"));
+        assert_prob_exact(
+            n.check.p_at_least,
+            &at_least,
+            &format!("{name}: P(at least)"),
+        );
+    }
+}
+
+#[test]
+fn cell_posterior_under_a_range_is_exact() {
+    let raster = slope();
+    let cells = valid_cells(&raster);
+    let singletons: Vec<Vec<u32>> = cells.iter().map(|&c| vec![c]).collect();
+    let exact = Enumerated::new(&raster, &singletons);
+    let stats = *raster.stats();
+    let (a, b) = (stats.certain + 1, stats.certain + 6);
+    let n = Normaliser::of(
+        &raster,
+        &Evidence::range(a, b, &raster).unwrap(),
+        &Control::new(),
+    )
+    .unwrap();
+    let post =
+        engine::cell_posterior(&raster, None, &n, &Settings::default(), &Control::new()).unwrap();
+    for (i, &(c, _, p)) in post.cells.iter().enumerate() {
+        // reference: exhaustive enumeration, P(cell has an event | a <= total <= b)
+        let (mut yes, mut all) = (BigUint::zero(), BigUint::zero());
+        for m in a..=b {
+            let w = &exact.weights[m as usize][i];
+            yes += &w[1];
+            all += &w[0] + &w[1];
+        }
+        let want = BigRational::new(BigInt::from(yes), BigInt::from(all));
+        assert_prob_exact(p, &want, &format!("cell {c}, range [{a}, {b}]: posterior"));
     }
 }

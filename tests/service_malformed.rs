@@ -52,6 +52,7 @@ fn cases() -> Vec<Case> {
     let raw = |s: &str| s.as_bytes().to_vec();
     let inv = "/problems/invalid-input";
     let bad = "/problems/malformed-json";
+    let unusable = "/problems/unusable-content";
     let big = "/problems/too-large";
     let deep = format!("{{\"inputs\": {}{}}}", "[".repeat(40), "]".repeat(40));
     vec![
@@ -163,8 +164,8 @@ fn cases() -> Vec<Case> {
         case(
             "impossible total, too many",
             with(|b| b["inputs"]["evidence"]["total"] = json!(9)),
-            400,
-            inv,
+            422,
+            unusable,
             Some("/inputs/evidence/total"),
         ),
         case(
@@ -174,6 +175,91 @@ fn cases() -> Vec<Case> {
                 b["inputs"]["raster"]["values"][1] = json!(1.0);
                 b["inputs"]["evidence"]["total"] = json!(1)
             }),
+            422,
+            unusable,
+            Some("/inputs/evidence/total"),
+        ),
+        case(
+            "fractional total",
+            with(|b| b["inputs"]["evidence"]["total"] = json!(3.5)),
+            400,
+            inv,
+            Some("/inputs/evidence/total"),
+        ),
+        case(
+            "total as a string",
+            with(|b| b["inputs"]["evidence"]["total"] = json!("4")),
+            400,
+            inv,
+            Some("/inputs/evidence/total"),
+        ),
+        case(
+            "range without its max",
+            with(|b| b["inputs"]["evidence"]["total"] = json!({"min": 2})),
+            400,
+            inv,
+            Some("/inputs/evidence/total/max"),
+        ),
+        case(
+            "range upside down",
+            with(|b| b["inputs"]["evidence"]["total"] = json!({"min": 5, "max": 2})),
+            400,
+            inv,
+            Some("/inputs/evidence/total"),
+        ),
+        case(
+            "range beyond the raster",
+            with(|b| b["inputs"]["evidence"]["total"] = json!({"min": 9, "max": 12})),
+            422,
+            unusable,
+            Some("/inputs/evidence/total"),
+        ),
+        case(
+            "range with a stray field",
+            with(|b| {
+                b["inputs"]["evidence"]["total"] = json!({"min": 1, "max": 3, "detection": 0.5})
+            }),
+            400,
+            inv,
+            Some("/inputs/evidence/total/detection"),
+        ),
+        case(
+            "detection rate above 1",
+            with(|b| b["inputs"]["evidence"]["total"] = json!({"detected": 3, "detection": 1.5})),
+            400,
+            inv,
+            Some("/inputs/evidence/total/detection"),
+        ),
+        case(
+            "more detected than the raster holds",
+            with(|b| b["inputs"]["evidence"]["total"] = json!({"detected": 9, "detection": 0.5})),
+            422,
+            unusable,
+            Some("/inputs/evidence/total/detected"),
+        ),
+        case(
+            "negative likelihood value",
+            with(|b| {
+                b["inputs"]["evidence"]["total"] =
+                    json!({"likelihood": {"offset": 2, "values": [0.5, -0.1]}})
+            }),
+            400,
+            inv,
+            Some("/inputs/evidence/total/likelihood/values/1"),
+        ),
+        case(
+            "likelihood zero wherever the raster reaches",
+            with(|b| {
+                b["inputs"]["evidence"]["total"] =
+                    json!({"likelihood": {"offset": 20, "values": [1.0]}})
+            }),
+            422,
+            unusable,
+            Some("/inputs/evidence/total/likelihood"),
+        ),
+        case(
+            "a total naming no form",
+            with(|b| b["inputs"]["evidence"]["total"] = json!({"around": 4})),
             400,
             inv,
             Some("/inputs/evidence/total"),
@@ -182,7 +268,7 @@ fn cases() -> Vec<Case> {
             "negative total",
             with(|b| b["inputs"]["evidence"]["total"] = json!(-1)),
             400,
-            bad,
+            inv,
             Some("/inputs/evidence/total"),
         ),
         case(

@@ -5,7 +5,7 @@
 //! bits of its probability, +0.0 for -0.0 and one fixed pattern for nodata). The same grid sent
 //! with `null`s or with a `nodata` value, or by reference, hashes alike. Where the raster lies
 //! (geotransform, CRS) is hashed after the cells when it is known, so a raster without it keeps
-//! the hash it always had. Normalisers are keyed by (raster hash, observed total).
+//! the hash it always had. Normalisers are keyed by (raster hash, evidence key).
 //!
 //! Rasters linked by `href` are read from the operator's `--data-dir` only: a relative path
 //! that stays inside it once resolved (no `..`, no link leading out); anything else is refused.
@@ -83,7 +83,7 @@ pub struct CacheStats {
 
 pub struct Caches {
     rasters: Cache<String, HeldRaster>,
-    normalisers: Cache<(String, u64), Arc<Normaliser>>,
+    normalisers: Cache<(String, String), Arc<Normaliser>>,
     raster_hits: AtomicU64,
     raster_misses: AtomicU64,
     normaliser_hits: AtomicU64,
@@ -105,7 +105,9 @@ impl Caches {
                 .build(),
             normalisers: Cache::builder()
                 .max_capacity(normaliser_bytes)
-                .weigher(|_: &(String, u64), n: &Arc<Normaliser>| weight(n.heap_bytes() + 128))
+                .weigher(|k: &(String, String), n: &Arc<Normaliser>| {
+                    weight(n.heap_bytes() + k.1.len() + 128)
+                })
                 .build(),
             raster_hits: AtomicU64::new(0),
             raster_misses: AtomicU64::new(0),
@@ -182,7 +184,7 @@ impl Caches {
         evidence: &Evidence,
         control: &Control,
     ) -> Result<Arc<Normaliser>, EngineError> {
-        let key = (hash.to_string(), evidence.total());
+        let key = (hash.to_string(), evidence.key());
         if let Some(n) = self.normalisers.get(&key) {
             self.normaliser_hits.fetch_add(1, Ordering::Relaxed);
             return Ok(n);

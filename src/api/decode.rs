@@ -11,10 +11,11 @@ use std::sync::Arc;
 
 use base64::Engine as _;
 use serde_json::value::RawValue;
+use serde_json::Value;
 
 use crate::engine::{
     CellSelection, EngineError, Evidence, Missing, Raster, RasterProblem, SettingProblem, Settings,
-    Zone, ZoneProblem, ZoneSet, DEFAULT_LEVEL, DEFAULT_TOLERANCE,
+    Zone, ZoneProblem, ZoneSet, DEFAULT_LEVEL, DEFAULT_TOLERANCE, MAX_LIKELIHOOD_VALUES,
 };
 use crate::geo::rect::{rect_cells, RectProblem};
 use crate::geo::zones::{parse_zones, rasterize, zones_from_labels, Polygon, ZoneOptions};
@@ -1017,8 +1018,152 @@ fn settings(spec: SummariesSpec) -> Result<Settings, DecodeError> {
     })
 }
 
-/// Decodes the evidence against the raster.
+/// Decodes the evidence against the raster: `total` in each of its forms, every mistake
+/// reported at its own field.
 fn evidence(spec: EvidenceSpec, raster: &Raster) -> Result<Evidence, DecodeError> {
-    Evidence::exact_total(spec.total, raster)
-        .map_err(|e| DecodeError::at("/evidence/total", e.to_string()))
+    const AT: &str = "/evidence/total";
+    // Evidence the raster cannot produce was read but cannot be used (422); malformed
+    // evidence is invalid input (400).
+    let engine = |at: &str| {
+        let at = at.to_string();
+        move |e: EngineError| match e {
+            EngineError::ImpossibleTotal(_) | EngineError::ImpossibleEvidence(_) => {
+                DecodeError::unusable(at, e.to_string())
+            }
+            _ => DecodeError::at(at, e.to_string()),
+        }
+    };
+    match spec.total {
+        Value::Number(_) => {
+            let m = whole(&spec.total, AT, "total")?;
+            Evidence::exact_total(m, raster).map_err(engine(AT))
+        }
+        Value::Object(map) => {
+            let keys: Vec<&str> = map.keys().map(String::as_str).collect();
+            let field = |name: &str| -> Result<&Value, DecodeError> {
+                map.get(name).ok_or_else(|| {
+                    DecodeError::at(
+                        format!("{AT}/{name}"),
+                        format!("`{name}` is missing: {}", FORMS_HINT),
+                    )
+                })
+            };
+            let known = |allowed: &[&str]| -> Result<(), DecodeError> {
+                match keys.iter().find(|k| !allowed.contains(k)) {
+                    Some(k) => Err(DecodeError::at(
+                        format!("{AT}/{k}"),
+                        format!(
+                            "unknown field `{k}` next to `{}`: {FORMS_HINT}",
+                            allowed.join("`, `")
+                        ),
+                    )),
+                    None => Ok(()),
+                }
+            };
+            if map.contains_key("min") || map.contains_key("max") {
+                known(&["min", "max"])?;
+                let min = whole(field("min")?, &format!("{AT}/min"), "min")?;
+                let max = whole(field("max")?, &format!("{AT}/max"), "max")?;
+                Evidence::range(min, max, raster).map_err(engine(AT))
+            } else if map.contains_key("detected") || map.contains_key("detection") {
+                known(&["detected", "detection"])?;
+                let detected = whole(field("detected")?, &format!("{AT}/detected"), "detected")?;
+                let rate = field("detection")?;
+                let detection = rate.as_f64().ok_or_else(|| {
+                    DecodeError::at(
+                        format!("{AT}/detection"),
+                        format!("detection rate {rate} must be a number in (0, 1], e.g. 0.85"),
+                    )
+                })?;
+                // A bad rate belongs to the rate's field, an impossible count to the count's.
+                let at = if detection > 0.0 && detection <= 1.0 {
+                    "detected"
+                } else {
+                    "detection"
+                };
+                Evidence::detected(detected, detection, raster)
+                    .map_err(engine(&format!("{AT}/{at}")))
+            } else if map.contains_key("likelihood") {
+                known(&["likelihood"])?;
+                let at = format!("{AT}/likelihood");
+                let Some(l) = field("likelihood")?.as_object() else {
+                    return Err(DecodeError::at(
+                        at,
+                        "the likelihood must be an object {\"offset\": total of the first value, \"values\": [P(observation | total), ...]}",
+                    ));
+                };
+                if let Some(k) = l.keys().find(|k| *k != "offset" && *k != "values") {
+                    return Err(DecodeError::at(
+                        format!("{at}/{k}"),
+                        format!("unknown field `{k}`: the likelihood has `offset` and `values`"),
+                    ));
+                }
+                let offset = match l.get("offset") {
+                    Some(v) => whole(v, &format!("{at}/offset"), "offset")?,
+                    None => 0,
+                };
+                let Some(values) = l.get("values").and_then(Value::as_array) else {
+                    return Err(DecodeError::at(
+                        format!("{at}/values"),
+                        "`values` must be an array of P(observation | total = offset + index), non-negative and not all zero",
+                    ));
+                };
+                if values.len() > MAX_LIKELIHOOD_VALUES {
+                    return Err(DecodeError::at(
+                        format!("{at}/values"),
+                        format!(
+                            "the likelihood lists {} values: at most {MAX_LIKELIHOOD_VALUES} are accepted",
+                            values.len()
+                        ),
+                    ));
+                }
+                let mut read = Vec::with_capacity(values.len());
+                for (i, v) in values.iter().enumerate() {
+                    match v.as_f64() {
+                        Some(x) if x >= 0.0 => read.push(x),
+                        _ => {
+                            return Err(DecodeError::at(
+                                format!("{at}/values/{i}"),
+                                format!("likelihood value {v} must be a number >= 0"),
+                            ))
+                        }
+                    }
+                }
+                Evidence::likelihood(offset, read, raster).map_err(engine(&at))
+            } else {
+                Err(DecodeError::at(
+                    AT,
+                    format!(
+                        "the total has fields `{}`, which name no form of evidence: {FORMS_HINT}",
+                        keys.join("`, `")
+                    ),
+                ))
+            }
+        }
+        other => Err(DecodeError::at(
+            AT,
+            format!("the total is {other}: {FORMS_HINT}"),
+        )),
+    }
+}
+
+const FORMS_HINT: &str = "give a count (318), a range {\"min\": 300, \"max\": 340}, a detected count {\"detected\": 318, \"detection\": 0.85} or a likelihood {\"likelihood\": {\"offset\": 300, \"values\": [...]}}";
+
+/// A count: a non-negative whole number, written as an integer or as a float with no fraction
+/// (`318.0`).
+fn whole(v: &Value, at: &str, name: &str) -> Result<u64, DecodeError> {
+    if let Some(n) = v.as_u64() {
+        return Ok(n);
+    }
+    let hint = |why: &str| DecodeError::at(at, format!("{name} {v} {why}"));
+    match v.as_f64() {
+        Some(x) if x < 0.0 => Err(hint("is negative: a count of events is >= 0")),
+        Some(x) if x.fract() != 0.0 => Err(hint(
+            "is not a whole number: give a count of events, e.g. 318",
+        )),
+        // Below 2^64 every whole f64 converts exactly.
+        Some(x) if x < 18_446_744_073_709_551_616.0 => Ok(x as u64),
+        Some(_) => Err(hint("is too large: a count must fit in 64 bits")),
+        None => Err(hint("is not a number: give a count of events, e.g. 318")),
+    }
 }

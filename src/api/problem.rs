@@ -168,7 +168,7 @@ impl ApiError {
         let own = |name: &str| format!("/problems/{name}");
         let (kind, title, detail, pointer) = match self {
             InvalidInput { pointer, detail } => (own("invalid-input"), "invalid input", detail.clone(), Some(pointer.clone())),
-            Unusable { pointer, detail } => (own("unusable-content"), "unusable file or geometry", detail.clone(), Some(pointer.clone())),
+            Unusable { pointer, detail } => (own("unusable-content"), "unusable input", detail.clone(), Some(pointer.clone())),
             MalformedJson { pointer, detail } => (own("malformed-json"), "malformed JSON", detail.clone(), Some(pointer.clone())),
             NestingTooDeep { limit, offset } => (
                 own("nesting-too-deep"),

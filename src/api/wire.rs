@@ -7,7 +7,7 @@ use serde::{Deserialize, Serialize};
 use serde_json::value::RawValue;
 use utoipa::ToSchema;
 
-use crate::engine::{Evaluation, TotalCheck, ZoneSummary};
+use crate::engine::{summarise, TotalCheck, ZoneSummary};
 
 /// The sample type of `values_base64`: little-endian IEEE 754 floats.
 #[derive(Clone, Copy, Debug, Default, Deserialize, Serialize, ToSchema, PartialEq, Eq)]
@@ -248,11 +248,51 @@ pub struct ZoneSpec {
     pub rect: Option<RectSpec>,
 }
 
-#[derive(Clone, Copy, Debug, Deserialize, Serialize, ToSchema)]
+/// What is known about the number of events over all valid cells.
+#[derive(Clone, Debug, Deserialize, Serialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct EvidenceSpec {
-    /// The observed number of events over all valid cells.
-    pub total: u64,
+    /// The true total in one of its forms: an exact count (`318`, also `318.0`), a range
+    /// (`{"min": 300, "max": 340}`), a detected count under imperfect detection
+    /// (`{"detected": 318, "detection": 0.85}`) or a likelihood over totals
+    /// (`{"likelihood": {"offset": 300, "values": [...]}}`).
+    #[schema(value_type = TotalSpec)]
+    pub total: serde_json::Value,
+}
+
+impl EvidenceSpec {
+    /// An exact observed total.
+    pub fn exact(total: u64) -> EvidenceSpec {
+        EvidenceSpec {
+            total: total.into(),
+        }
+    }
+}
+
+/// The forms of `evidence.total` (a schema only: `decode` reads the value itself, so each
+/// mistake is reported at its own field).
+#[derive(Serialize, ToSchema)]
+#[serde(untagged)]
+#[allow(dead_code)]
+pub enum TotalSpec {
+    /// Exactly this many events happened (a whole number; `318.0` is read as 318).
+    Exact(f64),
+    /// The true total lies in [min, max].
+    Range { min: u64, max: u64 },
+    /// This many events were found, each event being found independently with probability
+    /// `detection` (0 < detection <= 1).
+    Detected { detected: u64, detection: f64 },
+    /// P(observation | total = offset + i) = values[i], zero elsewhere.
+    Likelihood { likelihood: LikelihoodSpec },
+}
+
+/// A likelihood over totals.
+#[derive(Serialize, ToSchema)]
+#[allow(dead_code)]
+pub struct LikelihoodSpec {
+    pub offset: u64,
+    /// Non-negative, not all zero.
+    pub values: Vec<f64>,
 }
 
 /// What to report. Every field is optional.
@@ -380,18 +420,48 @@ pub struct ZoneResult {
     pub error_bound: f64,
 }
 
-/// The total check.
+/// The total check: the evidence against the raster's prior, and the posterior of the true
+/// total.
 #[derive(Clone, Debug, Serialize, Deserialize, PartialEq, ToSchema)]
 pub struct TotalResult {
-    pub observed: u64,
+    /// The form the evidence was read as: `total`, `range`, `detected` or `likelihood`.
+    pub evidence: String,
+    /// The exact total, or the detected count; absent for a range or a likelihood.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub observed: Option<u64>,
     pub prior_mean: f64,
     pub prior_sd: f64,
+    /// The central 99% interval of the prior total.
+    pub prior_interval: IntervalOut,
+    /// Distance of the observation from the prior mean in prior sd (for a range or a
+    /// likelihood, from the nearest total it allows; 0 inside); null when the sd is zero.
     pub z_score: Option<f64>,
+    /// P(total <= observed) under the prior (range, likelihood: P(total <= largest allowed);
+    /// detected: P(detected count <= detected)).
     pub p_at_most: f64,
+    /// P(total >= observed) under the prior (range, likelihood: P(total >= smallest allowed);
+    /// detected: P(detected count >= detected)).
     pub p_at_least: f64,
-    pub log_p_equal: f64,
+    /// ln P(observation) under the prior.
+    pub log_likelihood: f64,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub warning: Option<String>,
+    /// The posterior of the true total; absent for an exact total.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub posterior: Option<TotalPosteriorOut>,
+}
+
+/// The posterior law of the true total given the evidence.
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq, ToSchema)]
+pub struct TotalPosteriorOut {
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub pmf: Option<PmfOut>,
+    pub mean: f64,
+    pub sd: f64,
+    pub mode: u64,
+    pub median: u64,
+    pub interval: IntervalOut,
+    pub error_bound: f64,
 }
 
 /// The results document.
@@ -436,26 +506,48 @@ impl From<ZoneSummary> for ZoneResult {
     }
 }
 
-impl From<TotalCheck> for TotalResult {
-    fn from(t: TotalCheck) -> Self {
+impl TotalResult {
+    /// The wire form of a total check, its posterior summarised at `level` (pmf when `pmf`).
+    pub fn of(t: TotalCheck, level: f64, pmf: bool) -> TotalResult {
+        let posterior = t.posterior.map(|p| {
+            let s = summarise(p.offset, &p.pmf, level, &[]);
+            TotalPosteriorOut {
+                pmf: pmf.then_some(PmfOut {
+                    offset: p.offset,
+                    values: p.pmf,
+                }),
+                mean: s.mean,
+                sd: s.sd,
+                mode: s.mode,
+                median: s.median,
+                interval: IntervalOut {
+                    level: s.interval.level,
+                    lower: s.interval.lower,
+                    upper: s.interval.upper,
+                },
+                error_bound: p.error_bound,
+            }
+        });
         TotalResult {
+            evidence: t.evidence.to_string(),
             observed: t.observed,
             prior_mean: t.prior_mean,
             prior_sd: t.prior_sd,
-            z_score: t.z_score,
+            prior_interval: IntervalOut {
+                level: t.prior_level,
+                lower: t.prior_interval.0,
+                upper: t.prior_interval.1,
+            },
+            z_score: t.z_score.filter(|z| z.is_finite()),
             p_at_most: t.p_at_most,
             p_at_least: t.p_at_least,
-            log_p_equal: t.log_p_equal,
+            log_likelihood: if t.log_likelihood.is_finite() {
+                t.log_likelihood
+            } else {
+                -f64::MAX
+            },
             warning: t.warning,
-        }
-    }
-}
-
-impl From<Evaluation> for ResultsDocument {
-    fn from(e: Evaluation) -> Self {
-        ResultsDocument {
-            zones: e.zones.into_iter().map(Into::into).collect(),
-            total: e.total.into(),
+            posterior,
         }
     }
 }

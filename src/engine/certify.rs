@@ -8,7 +8,10 @@
 //! ways, both rigorous: a posteriori by the normaliser's bracket on Z less the computed sum, and
 //! a priori by the mass trimmed along the way (each trimmed unit meets a complementary law whose
 //! values are at most 1). The smaller is used; the rounding term gamma(2k + len + 2) covers the
-//! relative error of the values and of their normalisation.
+//! relative error of the values and of their normalisation. Under evidence allowing several
+//! totals, the pass takes the computed weights of the totals as exact; their own error adds the
+//! normaliser's `weights_error` (2 sum_j pi_j delta_j: a relative error delta_j in the weight of
+//! total j moves a normalised mixture by at most that in L1).
 
 use super::law::Law;
 use super::model::Zone;
@@ -111,7 +114,9 @@ pub(crate) fn certify(normaliser: &Normaliser, sum: &Sum) -> Certificate {
     let z_mid = 0.5 * (normaliser.z_lo + normaliser.z_hi);
     let measured = (2.0 * (z_mid - sum.s) / z_mid - 4.0 * gamma(chain)).max(0.0);
     Certificate {
-        bound: ((truncation + rounding) * (1.0 + BOUND_ROUNDINGS * UNIT_ROUNDOFF)).min(MAX_L1),
+        bound: ((truncation + rounding + normaliser.weights_error)
+            * (1.0 + BOUND_ROUNDINGS * UNIT_ROUNDOFF))
+            .min(MAX_L1),
         measured,
     }
 }

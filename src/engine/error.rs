@@ -94,6 +94,13 @@ pub enum EngineError {
     InvalidSetting(SettingProblem),
     /// Occurs when the observed total cannot happen under the raster.
     ImpossibleTotal(ImpossibleTotal),
+    /// Occurs when evidence other than an exact total is malformed: a range with min > max, a
+    /// detection rate outside (0, 1], a negative likelihood value. The message names the value
+    /// and the fix.
+    InvalidEvidence(String),
+    /// Occurs when evidence other than an exact total is impossible under the raster: no total
+    /// it allows can happen (or none has a prior probability f64 can hold).
+    ImpossibleEvidence(String),
     /// Occurs when the caller cancelled the computation through its `Control`.
     Cancelled,
 }
@@ -205,6 +212,9 @@ impl fmt::Display for EngineError {
                         t.total, t.possible, t.possible
                     )
                 }
+            }
+            EngineError::InvalidEvidence(message) | EngineError::ImpossibleEvidence(message) => {
+                f.write_str(message)
             }
             EngineError::Cancelled => write!(f, "the computation was cancelled"),
         }

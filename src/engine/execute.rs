@@ -133,6 +133,7 @@ pub(crate) fn execute_with(
                 fft_min,
             },
             target,
+            slack: normaliser.slack.as_ref(),
             whole_leaves: false,
             control,
         };

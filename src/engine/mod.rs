@@ -31,18 +31,18 @@ pub use control::Control;
 pub use error::{
     CellProblem, EngineError, ImpossibleTotal, Missing, RasterProblem, SettingProblem, ZoneProblem,
 };
-pub use evidence::Evidence;
+pub use evidence::{Evidence, Form, MAX_LIKELIHOOD_VALUES};
 pub use execute::execute;
 pub use model::{
     check_zones, CellIndex, Raster, RasterStats, Settings, Zone, ZoneSet, DEFAULT_LEVEL,
     DEFAULT_TOLERANCE, MAX_TOLERANCE, MIN_TOLERANCE,
 };
-pub use normaliser::{Normaliser, TotalCheck, IMPLAUSIBLE_TAIL};
+pub use normaliser::{Normaliser, TotalCheck, TotalPosterior, IMPLAUSIBLE_TAIL};
 pub use plan::{plan, Plan, PlanNode};
 pub use posterior::{
     cell_posterior, plan_cells, posterior, CellPlan, CellPosterior, CellSelection,
 };
-pub use summary::{Interval, ZoneSummary};
+pub use summary::{summarise, Interval, Summary, ZoneSummary};
 
 /// Everything `evaluate` reports: one summary per zone, in request order, and the total check.
 #[derive(Clone, Debug, PartialEq)]

@@ -196,6 +196,7 @@ pub fn posterior(
                 fft_min: FFT_MIN_LEN,
             },
             target,
+            slack: normaliser.slack.as_ref(),
             whole_leaves: true,
             control,
         };

@@ -62,7 +62,7 @@ impl ZoneSummary {
 
 /// The summaries of one pmf.
 #[derive(Clone, Debug, PartialEq)]
-pub(crate) struct Summary {
+pub struct Summary {
     pub mean: f64,
     pub sd: f64,
     pub mode: u64,
@@ -73,7 +73,7 @@ pub(crate) struct Summary {
 }
 
 /// Summarises a pmf over `offset ..` that sums to one.
-pub(crate) fn summarise(offset: u64, pmf: &[f64], level: f64, thresholds: &[u64]) -> Summary {
+pub fn summarise(offset: u64, pmf: &[f64], level: f64, thresholds: &[u64]) -> Summary {
     let mean_rel: f64 = pmf.iter().enumerate().map(|(i, &p)| i as f64 * p).sum();
     let var: f64 = pmf
         .iter()

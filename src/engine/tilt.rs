@@ -62,11 +62,11 @@ fn moments(values: &[f64], t: f64) -> (f64, f64, f64) {
         .reduce(|| (0.0, 0.0, 0.0), |a, b| (a.0 + b.0, a.1 + b.1, a.2 + b.2))
 }
 
-/// Solves sum q_i(theta) = target over the free cells, 0 < target < free.
-/// Newton's method with a bisection fallback inside a maintained bracket.
-pub(crate) fn solve(values: &[f64], free: u64, prior_mean: f64, target: u64) -> Tilt {
-    debug_assert!(target > 0 && target < free);
-    let m = target as f64;
+/// Solves sum q_i(theta) = target over the free cells, 0 < target < free (the target need not
+/// be a whole number). Newton's method with a bisection fallback inside a maintained bracket.
+pub(crate) fn solve(values: &[f64], free: u64, prior_mean: f64, target: f64) -> Tilt {
+    debug_assert!(target > 0.0 && target < free as f64);
+    let m = target;
     let n = free as f64;
     let logit = |x: f64| (x / (n - x)).ln();
     let mut theta =
@@ -117,7 +117,7 @@ mod tests {
             .collect();
         let prior: f64 = values.iter().sum();
         for target in [1u64, 20, 150, 400, 999] {
-            let tilt = solve(&values, 1000, prior, target);
+            let tilt = solve(&values, 1000, prior, target as f64);
             assert!(
                 (tilt.mean - target as f64).abs() <= 1e-3 * tilt.var.sqrt() + 1e-6,
                 "target {target}: mean {}",

@@ -1,6 +1,7 @@
 //! The tree pass: bottom-up private laws, top-down outside laws, one call per leaf.
 //!
-//! For a node v with union U_v, the pass holds the tilted law of the cells *outside* U_v,
+//! For a node v with union U_v, the pass holds the tilted law of the cells *outside* U_v (with
+//! the evidence's slack count at the root, when the evidence allows several totals),
 //! restricted to the count values that can still matter (those that combine with U_v's count to
 //! reach the target). Children get their outside law from the parent's by convolving in
 //! D_c = U_sib \ U_c: the sibling's private law, plus its fringe where zones overlap (see
@@ -31,8 +32,10 @@ pub(crate) struct Tree<'a> {
     pub membership: &'a Membership,
     /// Tilted cells, trim budget and FFT threshold.
     pub cells: Cells<'a>,
-    /// The count the free cells must make up.
+    /// The count the free cells must make up (with the slack, when there is one).
     pub target: u64,
+    /// The evidence's slack law (`Normaliser::slack`), convolved into the root's outside law.
+    pub slack: Option<&'a Law>,
     /// Keep each leaf's whole range [target - cells, target] (the cell posterior's leave-one-out
     /// reads all of it) instead of the range its trimmed law needs.
     pub whole_leaves: bool,
@@ -86,7 +89,11 @@ impl Tree<'_> {
         );
         let built = built?;
         let (lo, hi) = built.range();
-        let outside = restrict(outside, lo, hi).map(|l| self.trimmed(l));
+        let outside = match self.slack {
+            Some(slack) => convolve_range(&outside, slack, lo, hi, self.cells.fft_min),
+            None => restrict(outside, lo, hi),
+        }
+        .map(|l| self.trimmed(l));
         self.down(built, outside, finish)
     }
 

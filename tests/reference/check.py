@@ -301,7 +301,7 @@ def heterogeneous(t, binary, seed, width, height):
         t.prob(tc["p_at_least"], at_least, f"{what}: P(total >= m)")
         # ln of a value known to 1e-9 relative is known to 1e-9 absolute.
         lp = log(law_t[m])
-        t.check(abs(tc["log_p_equal"] - lp) <= REL_TOL, f"{what}: ln P(total = m) {tc['log_p_equal']!r} vs {mp.nstr(lp, 20)}")
+        t.check(abs(tc["log_likelihood"] - lp) <= REL_TOL, f"{what}: ln P(total = m) {tc['log_likelihood']!r} vs {mp.nstr(lp, 20)}")
         t.check(abs(tc["prior_mean"] - mean) <= 1e-12 * mean, f"{what}: prior mean {tc['prior_mean']!r} vs {mean!r}")
         t.check(abs(tc["prior_sd"] - sd) <= 1e-12 * sd, f"{what}: prior sd {tc['prior_sd']!r} vs {sd!r}")
         t.check(tc["z_score"] is not None and abs(tc["z_score"] - z_m) <= 1e-9, f"{what}: z-score {tc['z_score']!r} vs {z_m!r}")

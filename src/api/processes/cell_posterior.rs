@@ -12,9 +12,11 @@ use crate::api::formats::{self, Format};
 use crate::api::problem::ApiError;
 use crate::api::wire::{
     CellPosteriorOut, EvidenceSpec, PosteriorDocument, PosteriorInputs, PosteriorSummaries,
-    RasterInput,
+    RasterInput, TotalResult,
 };
-use crate::engine::{self, CellPlan, Control, EngineError, Evidence, Raster, Settings};
+use crate::engine::{
+    self, CellPlan, Control, EngineError, Evidence, Raster, Settings, DEFAULT_LEVEL,
+};
 
 pub struct CellPosteriorProcess;
 
@@ -114,7 +116,7 @@ pub fn compute(
             })
             .collect(),
         error_bound: post.error_bound,
-        total: normaliser.check.clone().into(),
+        total: TotalResult::of(normaliser.check.clone(), DEFAULT_LEVEL, true),
     })
 }
 

@@ -216,10 +216,15 @@ pub(crate) fn check_cost(cost: f64, limits: &Limits, pointer: &str) -> Result<()
 }
 
 /// An engine error raised while running a decoded request. Inputs were validated, so anything
-/// but cancellation is a fault of ours.
+/// but cancellation, or evidence whose totals have no prior mass f64 can hold (found only when
+/// the normaliser runs), is a fault of ours.
 pub(crate) fn run_error(e: EngineError) -> ApiError {
     match e {
         EngineError::Cancelled => ApiError::Cancelled,
+        EngineError::ImpossibleEvidence(detail) => ApiError::Unusable {
+            pointer: "/evidence/total".into(),
+            detail,
+        },
         other => ApiError::Internal {
             cause: format!("a decoded request failed in the engine: {other}"),
         },

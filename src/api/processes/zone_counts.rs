@@ -12,7 +12,8 @@ use crate::api::decode::{self, DecodeError, Decoded};
 use crate::api::formats::{self, Format};
 use crate::api::problem::ApiError;
 use crate::api::wire::{
-    EvalRequest, EvidenceSpec, RasterInput, ResultsDocument, SummariesSpec, ZoneResult, ZonesDoc,
+    EvalRequest, EvidenceSpec, RasterInput, ResultsDocument, SummariesSpec, TotalResult,
+    ZoneResult, ZonesDoc,
 };
 use crate::engine::{self, Control, EngineError, Plan, ZoneSummary};
 
@@ -115,7 +116,11 @@ pub fn compute(
         .collect();
     Ok(ResultsDocument {
         zones,
-        total: normaliser.check.clone().into(),
+        total: TotalResult::of(
+            normaliser.check.clone(),
+            d.settings.level(),
+            d.settings.pmf(),
+        ),
     })
 }
 
