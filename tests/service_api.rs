@@ -8,7 +8,7 @@ use axum::body::Body;
 use axum::http::{Request, StatusCode};
 use serde_json::{json, Value};
 use service_support::*;
-use statrs::distribution::{Discrete, Hypergeometric};
+use statrs::distribution::{Binomial, Discrete, Hypergeometric};
 use zonetally::Config;
 
 #[tokio::test]
@@ -68,7 +68,7 @@ async fn processes_are_listed_and_described_with_schemas() {
         .iter()
         .map(|p| p["id"].as_str().unwrap())
         .collect();
-    assert_eq!(ids, ["zone-counts", "cell-posterior"]);
+    assert_eq!(ids, ["zone-counts", "cell-posterior", "total-check"]);
     let d = get(&app, "/processes/zone-counts").await.json();
     assert_eq!(
         d["jobControlOptions"],
@@ -622,6 +622,88 @@ async fn rasters_by_reference_reuse_the_cached_normaliser() {
             .status,
         StatusCode::NOT_FOUND
     );
+}
+
+#[tokio::test]
+async fn total_check_and_zone_counts_take_a_range_and_a_detected_count() {
+    let (_, app) = state_with(config());
+    let raster = tea_inputs()["raster"].clone();
+    let body = json!({"inputs": {"raster": raster, "evidence": {"total": {"min": 2, "max": 5}}}});
+    let r = post_json(&app, "/processes/total-check/execution", &body, None).await;
+    assert_eq!(
+        r.status,
+        StatusCode::OK,
+        "{}",
+        String::from_utf8_lossy(&r.body)
+    );
+    let v = r.json();
+    // reference: statrs::distribution::Binomial(8, 0.5) is the prior of the total of 8 fair cells
+    let prior = Binomial::new(0.5, 8).unwrap();
+    assert_eq!(v["evidence"], "range");
+    assert!(v.get("observed").is_none());
+    // (the pmf summed: statrs's cdf goes through the incomplete beta and is a few ulp off)
+    let cdf = |b: &Binomial, k: u64| (0..=k).map(|j| b.pmf(j)).sum::<f64>();
+    assert!((v["p_at_most"].as_f64().unwrap() - cdf(&prior, 5)).abs() < 1e-15);
+    assert!((v["p_at_least"].as_f64().unwrap() - (1.0 - cdf(&prior, 1))).abs() < 1e-15);
+    let mass: f64 = (2..=5).map(|m| prior.pmf(m)).sum();
+    assert!((v["log_likelihood"].as_f64().unwrap() - mass.ln()).abs() < 1e-13);
+    // reference: statrs Binomial(8, 0.5) quantiles, 0.5% and 99.5%
+    assert_eq!(
+        v["prior_interval"],
+        json!({"level": 0.99, "lower": 1, "upper": 7})
+    );
+    let post = &v["posterior"];
+    assert_eq!(post["pmf"]["offset"], 2);
+    for (i, p) in post["pmf"]["values"].as_array().unwrap().iter().enumerate() {
+        let want = prior.pmf(2 + i as u64) / mass;
+        assert!(
+            (p.as_f64().unwrap() - want).abs() < 1e-15,
+            "P(total = {})",
+            2 + i
+        );
+    }
+    assert!(post["error_bound"].as_f64().unwrap() <= 1e-13);
+    assert!(v.get("warning").is_none());
+
+    // The zone of 4 cells: reference: the mixture over the range of statrs Hypergeometric(8, m, 4)
+    let mut zc = json!({"inputs": tea_inputs()});
+    zc["inputs"]["evidence"]["total"] = json!({"min": 2, "max": 5});
+    let z = post_json(&app, "/processes/zone-counts/execution", &zc, None)
+        .await
+        .json();
+    let pmf = z["zones"][0]["pmf"]["values"].as_array().unwrap();
+    for (k, p) in pmf.iter().enumerate() {
+        let want: f64 = (2..=5)
+            .map(|m| prior.pmf(m) / mass * Hypergeometric::new(8, m, 4).unwrap().pmf(k as u64))
+            .sum();
+        assert!((p.as_f64().unwrap() - want).abs() < 1e-14, "k {k}");
+    }
+    assert_eq!(z["total"]["posterior"]["pmf"], post["pmf"]);
+
+    // 3 detected at rate 0.5: the detected count is Binomial(8, 0.25); the posterior of the true
+    // total is proportional to Binomial(8, 0.5)(m) x Binomial(m, 0.5)(3).
+    let body = json!({"inputs": {"raster": tea_inputs()["raster"], "evidence": {"total": {"detected": 3, "detection": 0.5}}, "summaries": {"interval": 0.8}}});
+    let v = post_json(&app, "/processes/total-check/execution", &body, None)
+        .await
+        .json();
+    assert_eq!(v["observed"], 3);
+    let thinned = Binomial::new(0.25, 8).unwrap();
+    assert!((v["p_at_most"].as_f64().unwrap() - cdf(&thinned, 3)).abs() < 1e-15);
+    assert!((v["log_likelihood"].as_f64().unwrap() - thinned.ln_pmf(3)).abs() < 1e-13);
+    let w: Vec<f64> = (3..=8)
+        .map(|m| prior.pmf(m) * Binomial::new(0.5, m).unwrap().pmf(3))
+        .collect();
+    let s: f64 = w.iter().sum();
+    let got = &v["posterior"]["pmf"];
+    assert_eq!(got["offset"], 3);
+    for (i, p) in got["values"].as_array().unwrap().iter().enumerate() {
+        assert!(
+            (p.as_f64().unwrap() - w[i] / s).abs() < 1e-15,
+            "P(total = {} | 3 found)",
+            3 + i
+        );
+    }
+    assert_eq!(v["posterior"]["interval"]["level"], 0.8);
 }
 
 #[tokio::test]

@@ -23,7 +23,8 @@ use crate::geo::{geotiff, GeoError, GeoTransform, Grid};
 
 use super::wire::{
     EvalRequest, EvidenceSpec, LabelZones, PosteriorInputs, RasterFile, RasterInput, RasterSpec,
-    RectSpec, SampleType, SummariesSpec, ZoneOptions as ZoneOptionsSpec, ZoneSpec,
+    RectSpec, SampleType, SummariesSpec, TotalCheckInputs, ZoneOptions as ZoneOptionsSpec,
+    ZoneSpec,
 };
 
 /// Size limits checked while decoding and planning, before the large allocations.
@@ -297,6 +298,39 @@ pub fn zone_counts(
         raster: held.raster,
         frame: held.frame,
         zones,
+        evidence,
+        settings,
+    })
+}
+
+/// A `total-check` request after validation.
+#[derive(Clone, Debug)]
+pub struct DecodedTotal {
+    pub raster_key: Option<String>,
+    pub raster: Arc<Raster>,
+    pub evidence: Evidence,
+    /// Interval level and whether to report the pmf of the posterior total.
+    pub settings: Settings,
+}
+
+/// Decodes a `total-check` request document.
+pub fn total_check(
+    req: TotalCheckInputs,
+    limits: &Limits,
+    rasters: &dyn RasterSource,
+) -> Result<DecodedTotal, DecodeError> {
+    let settings = Settings::new(
+        req.summaries.interval.unwrap_or(DEFAULT_LEVEL),
+        Vec::new(),
+        DEFAULT_TOLERANCE,
+        req.summaries.pmf.unwrap_or(true),
+    )
+    .map_err(|e| DecodeError::at("/summaries/interval", e.to_string()))?;
+    let (raster_key, held) = raster_input(req.raster, limits, rasters)?;
+    let evidence = evidence(req.evidence, &held.raster)?;
+    Ok(DecodedTotal {
+        raster_key,
+        raster: held.raster,
         evidence,
         settings,
     })

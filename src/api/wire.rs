@@ -592,3 +592,25 @@ pub struct PosteriorInputs {
     #[serde(default)]
     pub summaries: PosteriorSummaries,
 }
+
+/// What the `total-check` reports besides the check itself. Every field is optional.
+#[derive(Clone, Debug, Default, Deserialize, Serialize, ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct TotalSummaries {
+    /// Credible level of the posterior total's interval (default 0.9).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub interval: Option<f64>,
+    /// Whether to report the posterior total's pmf (default true).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub pmf: Option<bool>,
+}
+
+/// The inputs of `total-check`.
+#[derive(Clone, Debug, Deserialize, ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct TotalCheckInputs {
+    pub raster: RasterInput,
+    pub evidence: EvidenceSpec,
+    #[serde(default)]
+    pub summaries: TotalSummaries,
+}

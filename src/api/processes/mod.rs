@@ -8,6 +8,7 @@
 //! own context and runs the same code.
 
 pub mod cell_posterior;
+pub mod total_check;
 pub mod zone_counts;
 
 use std::collections::BTreeMap;
@@ -27,6 +28,7 @@ pub fn registry() -> Vec<Arc<dyn Process>> {
     vec![
         Arc::new(zone_counts::ZoneCounts),
         Arc::new(cell_posterior::CellPosteriorProcess),
+        Arc::new(total_check::TotalCheckProcess),
     ]
 }
 
