@@ -29,6 +29,7 @@
 //! script.
 
 pub mod baseline;
+pub mod evidence;
 pub mod gis;
 pub mod workload;
 
@@ -128,6 +129,7 @@ pub struct Target {
 #[derive(Clone, Debug, Serialize)]
 pub struct Report {
     pub rows: Vec<Row>,
+    pub evidence: Vec<evidence::EvidenceRow>,
     pub gis: Vec<gis::GisRow>,
     pub targets: Vec<Target>,
 }
@@ -136,12 +138,14 @@ pub struct Report {
 #[derive(Clone, Debug, Default)]
 pub struct Selection {
     pub engine: Vec<&'static Workload>,
+    /// The evidence rows (`evidence::NAME`).
+    pub evidence: bool,
     pub gis: Vec<&'static str>,
 }
 
 impl Selection {
     pub fn len(&self) -> usize {
-        self.engine.len() + self.gis.len()
+        self.engine.len() + self.evidence as usize + self.gis.len()
     }
     pub fn is_empty(&self) -> bool {
         self.len() == 0
@@ -156,7 +160,8 @@ pub fn list() -> String {
     let geo = gis::GIS_WORKLOADS
         .iter()
         .map(|(n, a)| format!("{n:<16} {a}\n"));
-    engine.chain(geo).collect()
+    let evidence = std::iter::once(format!("{:<16} {}\n", evidence::NAME, evidence::ABOUT));
+    engine.chain(evidence).chain(geo).collect()
 }
 
 /// Resolves `--workload`: one by name, or all of them.
@@ -164,24 +169,32 @@ pub fn select(name: Option<&str>) -> Result<Selection, String> {
     let Some(n) = name else {
         return Ok(Selection {
             engine: WORKLOADS.iter().collect(),
+            evidence: true,
             gis: gis::GIS_WORKLOADS.iter().map(|(n, _)| *n).collect(),
         });
     };
     if let Some(w) = workload::find(n) {
         return Ok(Selection {
             engine: vec![w],
-            gis: Vec::new(),
+            ..Selection::default()
+        });
+    }
+    if n == evidence::NAME {
+        return Ok(Selection {
+            evidence: true,
+            ..Selection::default()
         });
     }
     if let Some(g) = gis::find(n) {
         return Ok(Selection {
-            engine: Vec::new(),
             gis: vec![g],
+            ..Selection::default()
         });
     }
     let names: Vec<&str> = WORKLOADS
         .iter()
         .map(|w| w.name)
+        .chain(std::iter::once(evidence::NAME))
         .chain(gis::GIS_WORKLOADS.iter().map(|(n, _)| *n))
         .collect();
     Err(format!(
@@ -196,10 +209,75 @@ pub fn run(selection: &Selection, log: &mut dyn Write) -> Result<Report, String>
     for w in &selection.engine {
         rows.push(run_one(w, log)?);
     }
+    let evidence = if selection.evidence {
+        evidence::run(log)?
+    } else {
+        Vec::new()
+    };
     let gis = gis::run(&selection.gis, log)?;
     let mut targets = targets(&rows);
+    targets.extend(evidence_targets(&evidence));
     targets.extend(gis_targets(&gis));
-    Ok(Report { rows, gis, targets })
+    Ok(Report {
+        rows,
+        evidence,
+        gis,
+        targets,
+    })
+}
+
+/// The targets of the evidence rows (issue 12): within 3x the exact total's time, within the
+/// accuracy contract of the per-total reference.
+pub fn evidence_targets(rows: &[evidence::EvidenceRow]) -> Vec<Target> {
+    let mut out = Vec::new();
+    for r in rows.iter().filter(|r| r.max_abs_diff.is_some()) {
+        out.push(target(
+            &format!("{}: {} / exact total", evidence::NAME, r.form),
+            "<= 3",
+            Some(r.ratio),
+            |x| x <= 3.0,
+        ));
+        out.push(target(
+            &format!(
+                "{}: {}: max |ours - per-total mixture|",
+                evidence::NAME,
+                r.form
+            ),
+            "<= 1e-13",
+            r.max_abs_diff,
+            |x| x <= TARGET_DIFF,
+        ));
+    }
+    out
+}
+
+/// The evidence rows as lines of text.
+fn render_evidence(rows: &[evidence::EvidenceRow]) -> String {
+    let mut s = format!("\nevidence rows ({})\n", evidence::ABOUT);
+    for r in rows {
+        s.push_str(&format!(
+            "  {}: ours {} (normaliser {}), {} of the exact total's {}; max bound {}\n",
+            r.form,
+            time(r.ours_s),
+            time(r.normaliser_s),
+            ratio(r.ratio),
+            time(r.exact_s),
+            diff(r.max_error_bound)
+        ));
+        if let (Some(n), Some(t), Some(d)) = (r.reference_totals, r.reference_s, r.max_abs_diff) {
+            s.push_str(&format!(
+                "    per-total mixture over {n} totals in {}: max |ours - mixture| {}\n",
+                time(t),
+                diff(d)
+            ));
+        }
+        if let (Some(m), Some((lo, hi))) = (r.total_mean, r.total_interval) {
+            s.push_str(&format!(
+                "    posterior of the true total: mean {m:.1}, 90% interval {lo} to {hi}\n"
+            ));
+        }
+    }
+    s
 }
 
 /// The targets of the GIS rows.
@@ -809,7 +887,7 @@ pub fn render(report: &Report) -> String {
         s.push_str(&format!("  {:>w$}", r.workload));
     }
     s.push('\n');
-    for (label, vals) in &lines {
+    for (label, vals) in lines.iter().filter(|_| !rows.is_empty()) {
         s.push_str(&format!("{label:<label_w$}"));
         for (v, w) in vals.iter().zip(&col_w) {
             s.push_str(&format!("  {v:>w$}"));
@@ -840,6 +918,9 @@ pub fn render(report: &Report) -> String {
             "  {:<tw$}  {:>10}  goal {:<9} {status}\n",
             t.name, measured, t.goal
         ));
+    }
+    if !report.evidence.is_empty() {
+        s.push_str(&render_evidence(&report.evidence));
     }
     if !report.gis.is_empty() {
         s.push_str(&render_gis(&report.gis));
