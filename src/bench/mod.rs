@@ -954,7 +954,7 @@ mod tests {
         let mut log = Vec::new();
         let selection = Selection {
             engine: vec![w],
-            gis: Vec::new(),
+            ..Selection::default()
         };
         let report = run(&selection, &mut log).unwrap();
         let row = &report.rows[0];
