@@ -179,7 +179,7 @@ pub fn select(name: Option<&str>) -> Result<Selection, String> {
             ..Selection::default()
         });
     }
-    if n == evidence::NAME {
+    if n.eq_ignore_ascii_case(evidence::NAME) {
         return Ok(Selection {
             evidence: true,
             ..Selection::default()
@@ -982,8 +982,9 @@ mod tests {
         );
         assert_eq!(
             select(None).unwrap().len(),
-            WORKLOADS.len() + gis::GIS_WORKLOADS.len()
+            WORKLOADS.len() + 1 + gis::GIS_WORKLOADS.len()
         );
+        assert!(select(Some("e250k-EVIDENCE")).unwrap().evidence);
         assert_eq!(select(Some("g-read-5000")).unwrap().gis, ["G-read-5000"]);
         assert_eq!(
             select(Some("w10k-PARTITION")).unwrap().engine[0].name,
