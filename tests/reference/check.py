@@ -13,7 +13,10 @@ document with a value computed here, independently of the engine:
   the scipy documentation example;
 - heterogeneous rasters of a few thousand cells: a 60-digit mpmath dynamic programme over the
   cells, at totals near the prior mean and 8 prior sd from it, for the zone laws and the total
-  check.
+  check;
+- a raster of 300 cells under a range, a detected count (detection 0.85) and a likelihood over
+  the total: the zone laws as mixtures over totals, the posterior of the true total, ln P of the
+  observation and the range's tail probabilities, from the same 60-digit programme.
 
 The accuracy contract (issue 2): every reported probability within 1e-13 absolute of the exact
 value, and within 1e-9 relative when the exact value is at least 1e-10. Exits non-zero on any
@@ -309,6 +312,74 @@ def heterogeneous(t, binary, seed, width, height):
         t.check(("warning" in tc) == implausible, f"{what}: warning {tc.get('warning')!r}, smaller tail {mp.nstr(min(at_most, at_least), 3)}")
 
 
+def evidence_forms(t, binary, seed, width, height):
+    """A range, a detected count and a likelihood over the total on a few hundred cells."""
+    t.start(f"mpmath DP {width}x{height}, evidence")
+    rng = random.Random(seed)
+    n = width * height
+    values = [rng.uniform(0.005, 0.45) for _ in range(n)]
+    mean = math.fsum(values)
+    sd = math.sqrt(math.fsum(p * (1 - p) for p in values))
+    rect = lambda r0, c0, rows, cols: [r * width + c for r in range(r0, r0 + rows) for c in range(c0, c0 + cols)]
+    zones = [
+        ("west", rect(0, 0, height, width // 3)),
+        ("corner", rect(0, 0, 4, 4)),
+        ("single", [rng.randrange(n)]),
+        ("scattered", sorted(rng.sample(range(n), n // 4))),
+    ]
+    m0 = round(mean + 2 * sd)
+    detected = round(0.85 * mean)
+    forms = [
+        ("range", {"min": m0 - 15, "max": m0 + 15}, lambda m: mpf(1) if m0 - 15 <= m <= m0 + 15 else mpf(0)),
+        # reference: the binomial likelihood of the detected count, C(m, d) 0.85^d 0.15^(m - d),
+        # with 0.85 the exact value of its double
+        ("detected", {"detected": detected, "detection": 0.85},
+         lambda m: binomial(m, detected) * mpf(0.85) ** detected * (1 - mpf(0.85)) ** (m - detected) if m >= detected else mpf(0)),
+        ("likelihood", {"likelihood": {"offset": m0 - 3, "values": [0.25, 1.0, 0.5, 0.0, 0.125, 1e-3]}},
+         lambda m: mpf([0.25, 1.0, 0.5, 0.0, 0.125, 1e-3][m - (m0 - 3)]) if 0 <= m - (m0 - 3) < 6 else mpf(0)),
+    ]
+    exact_zone = {}
+    for zid, cells in zones:
+        inside = set(cells)
+        exact_zone[zid] = (
+            poisson_binomial([values[c] for c in cells], len(cells)),
+            poisson_binomial([values[c] for c in range(n) if c not in inside], n),
+        )
+    law_t = poisson_binomial(values, n)
+    for name, total, w in forms:
+        req = request(width, height, values, zones, total, [1, 10, 50])
+        res = run_eval(binary, req)
+        weights = [w(m) for m in range(n + 1)]
+        evidence = sum(weights[m] * law_t[m] for m in range(n + 1))
+        for (zid, cells), zres in zip(zones, res["zones"]):
+            law_s, law_rest = exact_zone[zid]
+            size = len(cells)
+            # reference: mpmath 60-digit DP, the mixture over totals
+            # sum_m w(m) P_S(k) P_{T\S}(m - k) / sum_m w(m) P_T(m)
+            exact = [
+                sum(weights[m] * law_rest[m - k] for m in range(k, n + 1) if weights[m] != 0) * law_s[k] / evidence
+                for k in range(size + 1)
+            ]
+            check_zone(t, zres, exact, f"seed {seed}, {name}, zone {zid} ({size} cells)")
+        tc = res["total"]
+        what = f"seed {seed}, {name}: total check"
+        t.check(tc["evidence"] == name, f"{what}: form {tc['evidence']}")
+        # reference: mpmath 60-digit DP, the posterior of the true total w(m) P_T(m) / evidence
+        post = tc["posterior"]["pmf"]
+        got = [0.0] * (n + 1)
+        for i, v in enumerate(post["values"]):
+            got[post["offset"] + i] = v
+        worst = max(abs(got[m] - weights[m] * law_t[m] / evidence) for m in range(n + 1))
+        t.figure("max |P(total | evidence) - exact|", worst)
+        t.check(worst <= ABS_TOL, f"{what}: posterior of the total off by {mp.nstr(worst, 3)}")
+        l1 = sum(abs(got[m] - weights[m] * law_t[m] / evidence) for m in range(n + 1))
+        t.check(l1 <= tc["posterior"]["error_bound"], f"{what}: L1 {mp.nstr(l1, 3)} above the bound {tc['posterior']['error_bound']}")
+        t.check(abs(tc["log_likelihood"] - log(evidence)) <= REL_TOL, f"{what}: ln P(observation) {tc['log_likelihood']!r} vs {mp.nstr(log(evidence), 20)}")
+        if name == "range":
+            t.prob(tc["p_at_most"], sum(law_t[: m0 + 16]), f"{what}: P(total <= max)")
+            t.prob(tc["p_at_least"], 1 - sum(law_t[: m0 - 15]), f"{what}: P(total >= min)")
+
+
 def main():
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--bin", required=True, help="path of the zonetally binary")
@@ -319,6 +390,7 @@ def main():
         lambda: two_values(t, args.bin),
         lambda: heterogeneous(t, args.bin, 2026, 60, 50),
         lambda: heterogeneous(t, args.bin, 11, 45, 45),
+        lambda: evidence_forms(t, args.bin, 7, 20, 15),
     ]
     for g in groups:
         try:
