@@ -672,3 +672,88 @@ fn cell_posterior_under_a_range_is_exact() {
         assert_prob_exact(p, &want, &format!("cell {c}, range [{a}, {b}]: posterior"));
     }
 }
+
+#[test]
+fn detection_agrees_with_three_state_cells_enumerated() {
+    // Each cell holds no event (1 - p), an event that was found (p x rate) or an event that was
+    // missed (p x (1 - rate)); the observation is the number found. 3^9 = 19,683 worlds.
+    let p = [
+        1.0 / 7.0,
+        3.0 / 10.0,
+        0.5,
+        2.0 / 9.0,
+        5.0 / 6.0,
+        2.0 / 3.0,
+        1.0,
+        4.0 / 5.0,
+        0.0,
+    ];
+    let raster = Raster::from_probabilities(9, 1, p.to_vec()).unwrap();
+    let zone_cells = vec![0u32, 2, 4, 6, 7];
+    let zones = [Zone::new("even", zone_cells.clone(), &raster).unwrap()];
+    let settings = Settings::new(0.9, vec![], 1e-13, true).unwrap();
+    for (found, rate) in [(2u64, 0.75), (4, 0.5), (5, 0.9)] {
+        let r = rat(rate);
+        let probs: Vec<[BigRational; 3]> = p
+            .iter()
+            .map(|&x| {
+                let x = rat(x);
+                [rone() - &x, &x * &r, &x * (rone() - &r)]
+            })
+            .collect();
+        // reference: exhaustive enumeration of the 3^n worlds in exact arithmetic,
+        // P(N_zone = k, found = d) summed
+        let mut joint = vec![rzero(); zone_cells.len() + 1];
+        let mut total_law = vec![rzero(); p.len() + 1];
+        let worlds = 3usize.pow(p.len() as u32);
+        for code in 0..worlds {
+            let (mut c, mut weight, mut seen, mut k, mut events) = (code, rone(), 0u64, 0, 0);
+            for (i, pr) in probs.iter().enumerate() {
+                let state = c % 3;
+                c /= 3;
+                weight *= &pr[state];
+                if state > 0 {
+                    events += 1;
+                    if zone_cells.contains(&(i as u32)) {
+                        k += 1;
+                    }
+                }
+                seen += (state == 1) as u64;
+            }
+            if seen == found && !weight.is_zero() {
+                joint[k] += &weight;
+                total_law[events] += &weight;
+            }
+        }
+        let evidence: BigRational = joint.iter().sum();
+        let n = Normaliser::of(
+            &raster,
+            &Evidence::detected(found, rate, &raster).unwrap(),
+            &Control::new(),
+        )
+        .unwrap();
+        let plan = engine::plan(&raster, &zones);
+        let got = engine::execute(&plan, &raster, &zones, &n, &settings, &Control::new()).unwrap();
+        let dense = dense_pmf(got[0].offset, &got[0].pmf, zone_cells.len());
+        for (k, want) in joint.iter().enumerate() {
+            assert_prob_exact(
+                dense[k],
+                &(want / &evidence),
+                &format!("{found} found at {rate}: P(N = {k})"),
+            );
+        }
+        let post = n.check.posterior.as_ref().unwrap();
+        let dense = dense_pmf(post.offset, &post.pmf, p.len());
+        for (m, want) in total_law.iter().enumerate() {
+            assert_prob_exact(
+                dense[m],
+                &(want / &evidence),
+                &format!("{found} found at {rate}: P(total = {m})"),
+            );
+        }
+        assert!(
+            (n.check.log_likelihood - evidence.to_f64().unwrap().ln()).abs() <= REL_TOL,
+            "ln P({found} found)"
+        );
+    }
+}
