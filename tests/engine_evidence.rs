@@ -294,3 +294,86 @@ fn the_cell_posterior_under_detection_sums_to_the_total_s_posterior_mean() {
     let allowed = 1e-13 + 1e-14 * st.valid as f64;
     assert!(post.error_bound <= allowed, "bound {:e}", post.error_bound);
 }
+
+#[test]
+fn strata_reduce_to_their_parts() {
+    use zonetally::engine::{execute_strata, Strata, StratumCells};
+    let settings = Settings::new(0.9, vec![2, 5], 1e-13, true).unwrap();
+    for (seed, w, h) in CASES {
+        let (raster, _, zones) = case(seed, w, h);
+        let st = *raster.stats();
+        let m = (st.sum_p + 0.5 * st.sum_var.sqrt()).round() as u64;
+        // reference: identity, one stratum over every valid cell is the overall total
+        let all = StratumCells::new("all", valid_cells(&raster), &raster).unwrap();
+        let e = Evidence::exact_total(m, all.raster()).unwrap();
+        let one = Strata::new(vec![(all, e)]).unwrap();
+        let got = execute_strata(&raster, &zones, &one, &settings, &Control::new()).unwrap();
+        let (_, want) = run(&raster, &zones, &Evidence::exact_total(m, &raster).unwrap());
+        same(&got.zones, &want, &format!("seed {seed}: one stratum"));
+        // reference: identity, a zone inside one stratum is that stratum run alone
+        let cells = valid_cells(&raster);
+        let (left, right) = cells.split_at(cells.len() / 2);
+        let sl = StratumCells::new("left", left.to_vec(), &raster).unwrap();
+        let sr = StratumCells::new("right", right.to_vec(), &raster).unwrap();
+        let ml = sl.raster().stats().sum_p.round() as u64;
+        let el = Evidence::range(ml.saturating_sub(3), ml + 3, sl.raster()).unwrap();
+        let er = Evidence::detected(
+            (0.9 * sr.raster().stats().sum_p).round() as u64,
+            0.9,
+            sr.raster(),
+        )
+        .unwrap();
+        let inner: Vec<u32> = left.iter().step_by(3).copied().collect();
+        let zone = Zone::new("inner", inner.clone(), &raster).unwrap();
+        let sub_zone = Zone::new(
+            "inner",
+            inner
+                .iter()
+                .map(|c| left.iter().position(|x| x == c).unwrap() as u32)
+                .collect(),
+            sl.raster(),
+        )
+        .unwrap();
+        let (_, alone) = run(sl.raster(), &[sub_zone], &el);
+        let two = Strata::new(vec![(sl, el), (sr, er)]).unwrap();
+        let got = execute_strata(&raster, &[zone], &two, &settings, &Control::new()).unwrap();
+        same(
+            &got.zones,
+            &alone,
+            &format!("seed {seed}: a zone inside one stratum"),
+        );
+        // reference: identity, the posterior mean of the total is the sum of the strata's
+        let mean = |p: &zonetally::engine::TotalPosterior| -> f64 {
+            p.pmf
+                .iter()
+                .enumerate()
+                .map(|(i, x)| (p.offset + i as u64) as f64 * x)
+                .sum()
+        };
+        let parts: f64 = got
+            .strata
+            .iter()
+            .map(|(_, c)| mean(c.posterior.as_ref().unwrap()))
+            .sum();
+        let whole = mean(got.total.posterior.as_ref().unwrap());
+        assert!(
+            (parts - whole).abs() <= 1e-9 * whole,
+            "seed {seed}: {parts} vs {whole}"
+        );
+    }
+}
+
+#[test]
+fn overlapping_strata_are_refused_naming_both_and_a_cell() {
+    use zonetally::engine::{Strata, StratumCells};
+    let raster = Raster::from_probabilities(4, 1, vec![0.5; 4]).unwrap();
+    let a = StratumCells::new("north", vec![0, 1], &raster).unwrap();
+    let b = StratumCells::new("south", vec![1, 2], &raster).unwrap();
+    let ea = Evidence::exact_total(1, a.raster()).unwrap();
+    let eb = Evidence::exact_total(1, b.raster()).unwrap();
+    let e = Strata::new(vec![(a, ea), (b, eb)]).unwrap_err().to_string();
+    assert!(
+        e.contains("`north`") && e.contains("`south`") && e.contains("cell 1"),
+        "{e}"
+    );
+}

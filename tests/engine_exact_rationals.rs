@@ -757,3 +757,118 @@ fn detection_agrees_with_three_state_cells_enumerated() {
         );
     }
 }
+
+#[test]
+fn strata_with_mixed_forms_are_exact_on_the_slope() {
+    use zonetally::engine::{execute_strata, Strata, StratumCells};
+    let raster = slope();
+    let values = raster.values();
+    let cells = valid_cells(&raster);
+    // Stratum `a` under a range, stratum `b` under a detected count; the rest unconstrained.
+    let a_cells = vec![0u32, 1, 3, 4, 6, 5];
+    let b_cells = vec![8u32, 9, 10, 12, 13, 14];
+    let zones = [
+        ("upper", vec![0u32, 1, 2, 3, 4]),
+        ("straddle", vec![3, 4, 8, 9, 15, 17]),
+        ("free", vec![15, 17, 18]),
+    ];
+    let sa = StratumCells::new("a", a_cells.clone(), &raster).unwrap();
+    let sb = StratumCells::new("b", b_cells.clone(), &raster).unwrap();
+    let ea = Evidence::range(2, 4, sa.raster()).unwrap();
+    let eb = Evidence::detected(2, 0.75, sb.raster()).unwrap();
+    let strata = Strata::new(vec![(sa, ea), (sb, eb)]).unwrap();
+    let engine_zones: Vec<Zone> = zones
+        .iter()
+        .map(|(id, c)| Zone::new(*id, c.clone(), &raster).unwrap())
+        .collect();
+    let settings = Settings::new(0.9, vec![1, 2], 1e-13, true).unwrap();
+    let got = execute_strata(&raster, &engine_zones, &strata, &settings, &Control::new()).unwrap();
+    // reference: exhaustive enumeration of the 2^n configurations in exact arithmetic, each
+    // weighted by its prior probability, by 1[2 <= N_a <= 4] and by Binomial(2; N_b, 0.75)
+    let r = rat(0.75);
+    let w_b = |n: usize| -> BigRational {
+        if n < 2 {
+            return rzero();
+        }
+        let mut v = BigRational::from_integer(binom(n as u64, 2));
+        for _ in 0..2 {
+            v *= &r;
+        }
+        for _ in 0..n - 2 {
+            v *= rone() - &r;
+        }
+        v
+    };
+    let mut joint: Vec<Vec<BigRational>> = zones
+        .iter()
+        .map(|(_, c)| vec![rzero(); c.len() + 1])
+        .collect();
+    let mut totals = vec![rzero(); cells.len() + 1];
+    for code in 0u32..(1 << cells.len()) {
+        let mut weight = rone();
+        let (mut na, mut nb, mut n) = (0, 0, 0);
+        let mut k = vec![0usize; zones.len()];
+        for (i, &c) in cells.iter().enumerate() {
+            let p = rat(values[c as usize]);
+            if code >> i & 1 == 1 {
+                weight *= p;
+                n += 1;
+                na += a_cells.contains(&c) as usize;
+                nb += b_cells.contains(&c) as usize;
+                for (zi, (_, zc)) in zones.iter().enumerate() {
+                    k[zi] += zc.contains(&c) as usize;
+                }
+            } else {
+                weight *= rone() - p;
+            }
+            if weight.is_zero() {
+                break;
+            }
+        }
+        if weight.is_zero() || !(2..=4).contains(&na) {
+            continue;
+        }
+        let weight = weight * w_b(nb);
+        for zi in 0..zones.len() {
+            joint[zi][k[zi]] += &weight;
+        }
+        totals[n] += &weight;
+    }
+    let evidence: BigRational = totals.iter().sum();
+    for (zi, z) in got.zones.iter().enumerate() {
+        let dense = dense_pmf(z.offset, &z.pmf, zones[zi].1.len());
+        let mut l1 = rzero();
+        for (k, want) in joint[zi].iter().enumerate() {
+            let want = want / &evidence;
+            assert_prob_exact(
+                dense[k],
+                &want,
+                &format!("strata, zone `{}`: P(N = {k})", z.id),
+            );
+            l1 += (rat(dense[k]) - want).abs();
+        }
+        assert!(
+            l1 <= rat(z.error_bound),
+            "strata, zone `{}`: L1 above the bound",
+            z.id
+        );
+        assert!(
+            z.error_bound <= 1e-13,
+            "strata, zone `{}`: bound {:e}",
+            z.id,
+            z.error_bound
+        );
+    }
+    let post = got.total.posterior.as_ref().unwrap();
+    let dense = dense_pmf(post.offset, &post.pmf, cells.len());
+    for (m, want) in totals.iter().enumerate() {
+        assert_prob_exact(
+            dense[m],
+            &(want / &evidence),
+            &format!("strata: P(total = {m} | evidence)"),
+        );
+    }
+    // ln P(evidence) is the sum over strata (independent a priori).
+    assert!((got.total.log_likelihood - evidence.to_f64().unwrap().ln()).abs() <= REL_TOL);
+    assert_eq!(got.strata.len(), 2);
+}

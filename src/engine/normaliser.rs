@@ -105,7 +105,7 @@ pub struct Normaliser {
 }
 
 /// The prior's central 99% interval is reported at this level.
-const PRIOR_LEVEL: f64 = 0.99;
+pub(crate) const PRIOR_LEVEL: f64 = 0.99;
 /// Re-centring steps of the tilt on the posterior mean of the total (each one law build); the
 /// results never depend on the tilt, only the windows' widths do.
 const MAX_RECENTRE: usize = 8;
@@ -372,7 +372,10 @@ fn exact(raster: &Raster, total: u64, control: &Control) -> Result<Exact, Engine
 }
 
 /// The central `PRIOR_LEVEL` interval of the prior total, from its untilted law.
-fn prior_interval(raster: &Raster, control: &Control) -> Result<(u64, u64), EngineError> {
+pub(crate) fn prior_interval(
+    raster: &Raster,
+    control: &Control,
+) -> Result<(u64, u64), EngineError> {
     let stats = raster.stats();
     if stats.free == 0 {
         return Ok((stats.certain, stats.certain));
