@@ -707,6 +707,67 @@ async fn total_check_and_zone_counts_take_a_range_and_a_detected_count() {
 }
 
 #[tokio::test]
+async fn strata_each_with_their_own_total_reach_zone_counts_and_the_total_check() {
+    let (_, app) = state_with(config());
+    // Two strata of the 8 fair cells: the top row with exactly 2 events, cells 4 and 5 with a
+    // range [0, 1]; cells 6 and 7 unconstrained.
+    let mut body = json!({"inputs": tea_inputs()});
+    body["inputs"]["evidence"] = json!({"strata": [
+        {"id": "top", "rect": {"row": 0, "col": 0, "rows": 1, "cols": 4}, "total": 2},
+        {"id": "pair", "cells": [4, 5], "total": {"min": 0, "max": 1}}
+    ]});
+    let r = post_json(&app, "/processes/zone-counts/execution", &body, None).await;
+    assert_eq!(
+        r.status,
+        StatusCode::OK,
+        "{}",
+        String::from_utf8_lossy(&r.body)
+    );
+    let v = r.json();
+    // reference: closed form; the zone "cups" is the top row, so it holds exactly 2.
+    assert_eq!(v["zones"][0]["pmf"], json!({"offset": 2, "values": [1.0]}));
+    // The pair given at most one event: P(0) = 1/3, P(1) = 2/3 (closed form: 1/4 vs 2/4).
+    let pair = v["zones"][1]["pmf"]["values"].as_array().unwrap();
+    assert!((pair[0].as_f64().unwrap() - 1.0 / 3.0).abs() < 1e-15);
+    assert!((pair[1].as_f64().unwrap() - 2.0 / 3.0).abs() < 1e-15);
+    let total = &v["total"];
+    assert_eq!(total["evidence"], "strata");
+    assert_eq!(total["strata"][0]["id"], "top");
+    assert_eq!(total["strata"][1]["check"]["evidence"], "range");
+    // The true total: 2 + (pair: 1/3, 2/3) + Binomial(2, 1/2) for cells 6 and 7.
+    // reference: closed form, the convolution (1/3, 2/3) * (1/4, 1/2, 1/4) shifted by 2
+    let want = [
+        1.0 / 12.0,
+        1.0 / 6.0 + 1.0 / 6.0,
+        1.0 / 12.0 + 1.0 / 3.0,
+        1.0 / 6.0,
+    ];
+    let got = total["posterior"]["pmf"]["values"].as_array().unwrap();
+    assert_eq!(total["posterior"]["pmf"]["offset"], 2);
+    for (g, w) in got.iter().zip(want) {
+        assert!((g.as_f64().unwrap() - w).abs() < 1e-15, "{got:?}");
+    }
+    let check = post_json(
+        &app,
+        "/processes/total-check/execution",
+        &json!({"inputs": {"raster": tea_inputs()["raster"], "evidence": body["inputs"]["evidence"]}}),
+        None,
+    )
+    .await
+    .json();
+    assert_eq!(check["posterior"], total["posterior"]);
+    // The cell posterior takes an overall total only, and says so.
+    let cells = post_json(
+        &app,
+        "/processes/cell-posterior/execution",
+        &json!({"inputs": {"raster": tea_inputs()["raster"], "evidence": body["inputs"]["evidence"]}}),
+        None,
+    )
+    .await;
+    assert_eq!(cells.status, StatusCode::UNPROCESSABLE_ENTITY);
+}
+
+#[tokio::test]
 async fn cell_posterior_matches_enumeration() {
     let (_, app) = state_with(config());
     let p = [0.2, 0.5, 0.9];

@@ -65,11 +65,14 @@ async fn json_share() {
         // Engine alone: decode excluded, normaliser + plan + execute, on a rayon pool as in the service.
         let req: EvalRequest = serde_json::from_value(doc.clone()).unwrap();
         let decoded = decode::zone_counts(req, &Limits::default(), &LocalFiles).unwrap();
+        let decode::DecodedEvidence::Whole(evidence) = &decoded.evidence else {
+            panic!("the request states one overall total");
+        };
         let pool = rayon::ThreadPoolBuilder::new().build().unwrap();
         let t = Instant::now();
         pool.install(|| {
             let control = Control::new();
-            let n = Normaliser::of(&decoded.raster, &decoded.evidence, &control).unwrap();
+            let n = Normaliser::of(&decoded.raster, evidence, &control).unwrap();
             let plan = engine::plan(&decoded.raster, decoded.zones.engine_zones());
             engine::execute(
                 &plan,

@@ -258,6 +258,56 @@ fn cases() -> Vec<Case> {
             Some("/inputs/evidence/total/likelihood"),
         ),
         case(
+            "total and strata together",
+            with(|b| {
+                b["inputs"]["evidence"]["strata"] =
+                    json!([{"id": "a", "cells": [0, 1], "total": 1}])
+            }),
+            422,
+            unusable,
+            Some("/inputs/evidence"),
+        ),
+        case(
+            "neither total nor strata",
+            with(|b| b["inputs"]["evidence"] = json!({})),
+            400,
+            inv,
+            Some("/inputs/evidence"),
+        ),
+        case(
+            "overlapping strata",
+            with(|b| {
+                b["inputs"]["evidence"] = json!({"strata": [
+                    {"id": "north", "cells": [0, 1, 2], "total": 1},
+                    {"id": "south", "cells": [2, 3], "total": 1}
+                ]})
+            }),
+            422,
+            unusable,
+            Some("/inputs/evidence/strata"),
+        ),
+        case(
+            "a stratum with both cells and a rectangle",
+            with(|b| {
+                b["inputs"]["evidence"] = json!({"strata": [
+                    {"id": "a", "cells": [0], "rect": {"row": 0, "col": 0, "rows": 1, "cols": 1}, "total": 0}
+                ]})
+            }),
+            400,
+            inv,
+            Some("/inputs/evidence/strata/0"),
+        ),
+        case(
+            "a stratum total its cells cannot reach",
+            with(|b| {
+                b["inputs"]["evidence"] =
+                    json!({"strata": [{"id": "a", "cells": [0, 1], "total": 3}]})
+            }),
+            422,
+            unusable,
+            Some("/inputs/evidence/strata/0/total"),
+        ),
+        case(
             "a total naming no form",
             with(|b| b["inputs"]["evidence"]["total"] = json!({"around": 4})),
             400,

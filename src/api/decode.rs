@@ -15,7 +15,8 @@ use serde_json::Value;
 
 use crate::engine::{
     CellSelection, EngineError, Evidence, Missing, Raster, RasterProblem, SettingProblem, Settings,
-    Zone, ZoneProblem, ZoneSet, DEFAULT_LEVEL, DEFAULT_TOLERANCE, MAX_LIKELIHOOD_VALUES,
+    Strata, StratumCells, Zone, ZoneProblem, ZoneSet, DEFAULT_LEVEL, DEFAULT_TOLERANCE,
+    MAX_LIKELIHOOD_VALUES,
 };
 use crate::geo::rect::{rect_cells, RectProblem};
 use crate::geo::zones::{parse_zones, rasterize, zones_from_labels, Polygon, ZoneOptions};
@@ -23,8 +24,8 @@ use crate::geo::{geotiff, GeoError, GeoTransform, Grid};
 
 use super::wire::{
     EvalRequest, EvidenceSpec, LabelZones, PosteriorInputs, RasterFile, RasterInput, RasterSpec,
-    RectSpec, SampleType, SummariesSpec, TotalCheckInputs, ZoneOptions as ZoneOptionsSpec,
-    ZoneSpec,
+    RectSpec, SampleType, StratumSpec, SummariesSpec, TotalCheckInputs,
+    ZoneOptions as ZoneOptionsSpec, ZoneSpec,
 };
 
 /// Size limits checked while decoding and planning, before the large allocations.
@@ -255,7 +256,7 @@ pub struct Decoded {
     pub raster: Arc<Raster>,
     pub frame: Frame,
     pub zones: DecodedZones,
-    pub evidence: Evidence,
+    pub evidence: DecodedEvidence,
     pub settings: Settings,
 }
 
@@ -308,7 +309,7 @@ pub fn zone_counts(
 pub struct DecodedTotal {
     pub raster_key: Option<String>,
     pub raster: Arc<Raster>,
-    pub evidence: Evidence,
+    pub evidence: DecodedEvidence,
     /// Interval level and whether to report the pmf of the posterior total.
     pub settings: Settings,
 }
@@ -367,7 +368,7 @@ pub fn cell_posterior(
         };
         DecodeError::at(pointer, e.to_string())
     })?;
-    let evidence = evidence(req.evidence, &raster)?;
+    let evidence = whole_evidence(req.evidence, &raster)?;
     Ok(DecodedCells {
         raster_key,
         raster,
@@ -1052,10 +1053,94 @@ fn settings(spec: SummariesSpec) -> Result<Settings, DecodeError> {
     })
 }
 
-/// Decodes the evidence against the raster: `total` in each of its forms, every mistake
-/// reported at its own field.
-fn evidence(spec: EvidenceSpec, raster: &Raster) -> Result<Evidence, DecodeError> {
-    const AT: &str = "/evidence/total";
+/// The evidence of a request: one overall total, or strata.
+#[derive(Clone, Debug)]
+pub enum DecodedEvidence {
+    Whole(Evidence),
+    Strata(Strata),
+}
+
+/// Decodes the evidence against the raster: `total` or `strata`, never both.
+fn evidence(spec: EvidenceSpec, raster: &Raster) -> Result<DecodedEvidence, DecodeError> {
+    match (spec.total, spec.strata) {
+        (Some(_), Some(_)) => Err(DecodeError::unusable(
+            "/evidence",
+            "`total` and `strata` together are ambiguous: send one or the other (an overall total, or one total per stratum)",
+        )),
+        (None, None) => Err(DecodeError::at(
+            "/evidence",
+            "the evidence has neither `total` nor `strata`: give an overall total, or one total per stratum",
+        )),
+        (Some(total), None) => Ok(DecodedEvidence::Whole(total_form(
+            total,
+            "/evidence/total",
+            raster,
+        )?)),
+        (None, Some(list)) => strata(list, raster).map(DecodedEvidence::Strata),
+    }
+}
+
+/// The evidence when only an overall total is taken (the cell posterior).
+fn whole_evidence(spec: EvidenceSpec, raster: &Raster) -> Result<Evidence, DecodeError> {
+    match evidence(spec, raster)? {
+        DecodedEvidence::Whole(e) => Ok(e),
+        DecodedEvidence::Strata(_) => Err(DecodeError::unusable(
+            "/evidence/strata",
+            "cell-posterior takes an overall `total` only, not strata: send the total over all valid cells (zone-counts and total-check take strata)",
+        )),
+    }
+}
+
+/// Decodes the strata: each one's cells, then its total against its own cells.
+fn strata(list: Vec<StratumSpec>, raster: &Raster) -> Result<Strata, DecodeError> {
+    let valid = raster.stats().valid;
+    let mut held = 0u64;
+    let mut parts = Vec::with_capacity(list.len());
+    for (i, s) in list.into_iter().enumerate() {
+        let at = format!("/evidence/strata/{i}");
+        let cells = match (s.cells, s.rect) {
+            (Some(c), None) => c,
+            (None, Some(r)) => rect(&s.id, r, raster, &at)?,
+            _ => {
+                return Err(DecodeError::at(
+                    at,
+                    format!("stratum `{}` needs exactly one of `cells` or `rect`", s.id),
+                ))
+            }
+        };
+        // Disjoint strata hold at most every valid cell: more means some overlap, refused
+        // before anything larger is built.
+        held += cells.len() as u64;
+        if held > valid {
+            return Err(DecodeError::unusable(
+                format!("{at}/cells"),
+                format!(
+                    "the strata up to `{}` hold {held} cells, more than the raster's {valid} valid cells: strata must be disjoint and hold valid cells only",
+                    s.id
+                ),
+            ));
+        }
+        let cells = StratumCells::new(s.id, cells, raster).map_err(|e| {
+            DecodeError::at(
+                format!("{at}/cells"),
+                e.to_string().replacen("zone", "stratum", 1),
+            )
+        })?;
+        let e = total_form(s.total, &format!("{at}/total"), cells.raster())?;
+        parts.push((cells, e));
+    }
+    Strata::new(parts).map_err(|e| match e {
+        EngineError::ImpossibleEvidence(_) => {
+            DecodeError::unusable("/evidence/strata", e.to_string())
+        }
+        _ => DecodeError::at("/evidence/strata", e.to_string()),
+    })
+}
+
+/// Decodes one total in each of its forms, every mistake reported at its own field under `at`.
+fn total_form(total: Value, at: &str, raster: &Raster) -> Result<Evidence, DecodeError> {
+    let at_root = at.to_string();
+    let at_root = at_root.as_str();
     // Evidence the raster cannot produce was read but cannot be used (422); malformed
     // evidence is invalid input (400).
     let engine = |at: &str| {
@@ -1067,17 +1152,17 @@ fn evidence(spec: EvidenceSpec, raster: &Raster) -> Result<Evidence, DecodeError
             _ => DecodeError::at(at, e.to_string()),
         }
     };
-    match spec.total {
+    match total {
         Value::Number(_) => {
-            let m = whole(&spec.total, AT, "total")?;
-            Evidence::exact_total(m, raster).map_err(engine(AT))
+            let m = whole(&total, at_root, "total")?;
+            Evidence::exact_total(m, raster).map_err(engine(at_root))
         }
         Value::Object(map) => {
             let keys: Vec<&str> = map.keys().map(String::as_str).collect();
             let field = |name: &str| -> Result<&Value, DecodeError> {
                 map.get(name).ok_or_else(|| {
                     DecodeError::at(
-                        format!("{AT}/{name}"),
+                        format!("{at_root}/{name}"),
                         format!("`{name}` is missing: {}", FORMS_HINT),
                     )
                 })
@@ -1085,7 +1170,7 @@ fn evidence(spec: EvidenceSpec, raster: &Raster) -> Result<Evidence, DecodeError
             let known = |allowed: &[&str]| -> Result<(), DecodeError> {
                 match keys.iter().find(|k| !allowed.contains(k)) {
                     Some(k) => Err(DecodeError::at(
-                        format!("{AT}/{k}"),
+                        format!("{at_root}/{k}"),
                         format!(
                             "unknown field `{k}` next to `{}`: {FORMS_HINT}",
                             allowed.join("`, `")
@@ -1096,16 +1181,20 @@ fn evidence(spec: EvidenceSpec, raster: &Raster) -> Result<Evidence, DecodeError
             };
             if map.contains_key("min") || map.contains_key("max") {
                 known(&["min", "max"])?;
-                let min = whole(field("min")?, &format!("{AT}/min"), "min")?;
-                let max = whole(field("max")?, &format!("{AT}/max"), "max")?;
-                Evidence::range(min, max, raster).map_err(engine(AT))
+                let min = whole(field("min")?, &format!("{at_root}/min"), "min")?;
+                let max = whole(field("max")?, &format!("{at_root}/max"), "max")?;
+                Evidence::range(min, max, raster).map_err(engine(at_root))
             } else if map.contains_key("detected") || map.contains_key("detection") {
                 known(&["detected", "detection"])?;
-                let detected = whole(field("detected")?, &format!("{AT}/detected"), "detected")?;
+                let detected = whole(
+                    field("detected")?,
+                    &format!("{at_root}/detected"),
+                    "detected",
+                )?;
                 let rate = field("detection")?;
                 let detection = rate.as_f64().ok_or_else(|| {
                     DecodeError::at(
-                        format!("{AT}/detection"),
+                        format!("{at_root}/detection"),
                         format!("detection rate {rate} must be a number in (0, 1], e.g. 0.85"),
                     )
                 })?;
@@ -1116,10 +1205,10 @@ fn evidence(spec: EvidenceSpec, raster: &Raster) -> Result<Evidence, DecodeError
                     "detection"
                 };
                 Evidence::detected(detected, detection, raster)
-                    .map_err(engine(&format!("{AT}/{at}")))
+                    .map_err(engine(&format!("{at_root}/{at}")))
             } else if map.contains_key("likelihood") {
                 known(&["likelihood"])?;
-                let at = format!("{AT}/likelihood");
+                let at = format!("{at_root}/likelihood");
                 let Some(l) = field("likelihood")?.as_object() else {
                     return Err(DecodeError::at(
                         at,
@@ -1166,7 +1255,7 @@ fn evidence(spec: EvidenceSpec, raster: &Raster) -> Result<Evidence, DecodeError
                 Evidence::likelihood(offset, read, raster).map_err(engine(&at))
             } else {
                 Err(DecodeError::at(
-                    AT,
+                    at_root,
                     format!(
                         "the total has fields `{}`, which name no form of evidence: {FORMS_HINT}",
                         keys.join("`, `")
@@ -1175,7 +1264,7 @@ fn evidence(spec: EvidenceSpec, raster: &Raster) -> Result<Evidence, DecodeError
             }
         }
         other => Err(DecodeError::at(
-            AT,
+            at_root,
             format!("the total is {other}: {FORMS_HINT}"),
         )),
     }

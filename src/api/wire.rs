@@ -248,25 +248,46 @@ pub struct ZoneSpec {
     pub rect: Option<RectSpec>,
 }
 
-/// What is known about the number of events over all valid cells.
+/// What is known about the number of events: one `total` over all valid cells, or `strata`
+/// (disjoint sets of cells, each with its own total); not both.
 #[derive(Clone, Debug, Deserialize, Serialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct EvidenceSpec {
-    /// The true total in one of its forms: an exact count (`318`, also `318.0`), a range
-    /// (`{"min": 300, "max": 340}`), a detected count under imperfect detection
+    /// The true total over all valid cells in one of its forms: an exact count (`318`, also
+    /// `318.0`), a range (`{"min": 300, "max": 340}`), a detected count under imperfect detection
     /// (`{"detected": 318, "detection": 0.85}`) or a likelihood over totals
     /// (`{"likelihood": {"offset": 300, "values": [...]}}`).
-    #[schema(value_type = TotalSpec)]
-    pub total: serde_json::Value,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    #[schema(value_type = Option<TotalSpec>)]
+    pub total: Option<serde_json::Value>,
+    /// Disjoint strata (districts), each with its own evidence on its own total; cells in no
+    /// stratum are unconstrained.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub strata: Option<Vec<StratumSpec>>,
 }
 
 impl EvidenceSpec {
     /// An exact observed total.
     pub fn exact(total: u64) -> EvidenceSpec {
         EvidenceSpec {
-            total: total.into(),
+            total: Some(total.into()),
+            strata: None,
         }
     }
+}
+
+/// One stratum: its cells (a list or a rectangle) and the evidence on its total.
+#[derive(Clone, Debug, Deserialize, Serialize, ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct StratumSpec {
+    pub id: String,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub cells: Option<Vec<u32>>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub rect: Option<RectSpec>,
+    /// The stratum's total, in any form `evidence.total` takes.
+    #[schema(value_type = TotalSpec)]
+    pub total: serde_json::Value,
 }
 
 /// The forms of `evidence.total` (a schema only: `decode` reads the value itself, so each
@@ -449,6 +470,19 @@ pub struct TotalResult {
     /// The posterior of the true total; absent for an exact total.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub posterior: Option<TotalPosteriorOut>,
+    /// Under strata: each stratum's own check (the tails and warning above are those of the
+    /// least plausible stratum, `log_likelihood` their sum).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    #[schema(no_recursion)]
+    pub strata: Option<Vec<StratumCheck>>,
+}
+
+/// One stratum's total check.
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq, ToSchema)]
+pub struct StratumCheck {
+    pub id: String,
+    #[schema(no_recursion)]
+    pub check: TotalResult,
 }
 
 /// The posterior law of the true total given the evidence.
@@ -548,6 +582,7 @@ impl TotalResult {
             },
             warning: t.warning,
             posterior,
+            strata: None,
         }
     }
 }

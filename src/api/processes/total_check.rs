@@ -8,11 +8,13 @@ use super::{
     input, parse_execute, run_error, schema_of, to_json, Context, Output, Prepared, Process,
     ResponseMode,
 };
-use crate::api::decode::{self, DecodedTotal};
+use crate::api::decode::{self, DecodedEvidence, DecodedTotal};
 use crate::api::formats::Format;
 use crate::api::problem::ApiError;
-use crate::api::wire::{EvidenceSpec, RasterInput, TotalCheckInputs, TotalResult, TotalSummaries};
-use crate::engine::{Control, EngineError};
+use crate::api::wire::{
+    EvidenceSpec, RasterInput, StratumCheck, TotalCheckInputs, TotalResult, TotalSummaries,
+};
+use crate::engine::{self, Control, EngineError, TotalCheck};
 
 pub struct TotalCheckProcess;
 
@@ -70,20 +72,46 @@ impl Process for TotalCheckProcess {
 /// A decoded `total-check` request.
 pub struct Check(pub DecodedTotal);
 
-/// Runs a decoded request: the normaliser (from the context's source) holds the check.
+/// Runs a decoded request: the normaliser (from the context's source) holds the check; under
+/// strata, each stratum's normaliser and their combination.
 pub fn compute(
     d: &DecodedTotal,
     ctx: &Context,
     control: &Control,
 ) -> Result<TotalResult, EngineError> {
-    let n = ctx
-        .normalisers
-        .normaliser(d.raster_key.as_deref(), &d.raster, &d.evidence, control)?;
-    Ok(TotalResult::of(
-        n.check.clone(),
-        d.settings.level(),
-        d.settings.pmf(),
-    ))
+    let (level, pmf) = (d.settings.level(), d.settings.pmf());
+    match &d.evidence {
+        DecodedEvidence::Whole(e) => {
+            let n = ctx
+                .normalisers
+                .normaliser(d.raster_key.as_deref(), &d.raster, e, control)?;
+            Ok(TotalResult::of(n.check.clone(), level, pmf))
+        }
+        DecodedEvidence::Strata(strata) => {
+            let run = engine::execute_strata(&d.raster, &[], strata, &d.settings, control)?;
+            Ok(with_strata(run.total, run.strata, level, pmf))
+        }
+    }
+}
+
+/// The overall check with each stratum's beside it.
+pub fn with_strata(
+    total: TotalCheck,
+    strata: Vec<(String, TotalCheck)>,
+    level: f64,
+    pmf: bool,
+) -> TotalResult {
+    let mut out = TotalResult::of(total, level, pmf);
+    out.strata = Some(
+        strata
+            .into_iter()
+            .map(|(id, check)| StratumCheck {
+                id,
+                check: TotalResult::of(check, level, pmf),
+            })
+            .collect(),
+    );
+    out
 }
 
 impl Prepared for Check {

@@ -4,11 +4,12 @@
 use bytes::Bytes;
 use serde_json::{json, Value};
 
+use super::total_check::with_strata;
 use super::{
     check_cost, input, parse_execute, run_error, schema_of, to_json, Context, Output, Prepared,
     Process, ResponseMode,
 };
-use crate::api::decode::{self, DecodeError, Decoded};
+use crate::api::decode::{self, DecodeError, Decoded, DecodedEvidence};
 use crate::api::formats::{self, Format};
 use crate::api::problem::ApiError;
 use crate::api::wire::{
@@ -92,12 +93,38 @@ pub fn compute(
     control: &Control,
 ) -> Result<ResultsDocument, EngineError> {
     let d = &c.decoded;
-    let normaliser =
-        ctx.normalisers
-            .normaliser(d.raster_key.as_deref(), &d.raster, &d.evidence, control)?;
-    let computed = match &d.zones.set {
-        Some(set) => engine::execute(&c.plan, &d.raster, set, &normaliser, &d.settings, control)?,
-        None => Vec::new(),
+    let (computed, total) = match &d.evidence {
+        DecodedEvidence::Whole(evidence) => {
+            let normaliser = ctx.normalisers.normaliser(
+                d.raster_key.as_deref(),
+                &d.raster,
+                evidence,
+                control,
+            )?;
+            let computed = match &d.zones.set {
+                Some(set) => {
+                    engine::execute(&c.plan, &d.raster, set, &normaliser, &d.settings, control)?
+                }
+                None => Vec::new(),
+            };
+            let total = TotalResult::of(
+                normaliser.check.clone(),
+                d.settings.level(),
+                d.settings.pmf(),
+            );
+            (computed, total)
+        }
+        DecodedEvidence::Strata(strata) => {
+            let run = engine::execute_strata(
+                &d.raster,
+                d.zones.engine_zones(),
+                strata,
+                &d.settings,
+                control,
+            )?;
+            let total = with_strata(run.total, run.strata, d.settings.level(), d.settings.pmf());
+            (run.zones, total)
+        }
     };
     let mut computed: Vec<Option<ZoneSummary>> = computed.into_iter().map(Some).collect();
     let zones = d
@@ -114,14 +141,7 @@ pub fn compute(
             result
         })
         .collect();
-    Ok(ResultsDocument {
-        zones,
-        total: TotalResult::of(
-            normaliser.check.clone(),
-            d.settings.level(),
-            d.settings.pmf(),
-        ),
-    })
+    Ok(ResultsDocument { zones, total })
 }
 
 impl Prepared for Counts {
