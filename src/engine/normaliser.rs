@@ -117,6 +117,8 @@ struct Exact {
     z_lo: f64,
     z_hi: f64,
     law_len: usize,
+    /// The prior's central interval, when the tilted law's window holds the prior.
+    prior: Option<(u64, u64)>,
     /// P(total <= m), P(total >= m), ln P(total = m) under the prior.
     p_at_most: f64,
     p_at_least: f64,
@@ -143,10 +145,13 @@ impl Normaliser {
         let stats = *raster.stats();
         let prior_mean = stats.sum_p;
         let prior_sd = stats.sum_var.sqrt();
-        let prior_interval = prior_interval(raster, control)?;
         let (lo, hi) = evidence.support();
         if let Some(m) = evidence.single() {
             let e = exact(raster, m, control)?;
+            let prior_interval = match e.prior {
+                Some(p) => p,
+                None => prior_interval(raster, control)?,
+            };
             let observed = match evidence.form() {
                 Form::Total(m) => Some(*m),
                 Form::Detected { detected, .. } => Some(*detected),
@@ -234,6 +239,10 @@ impl Normaliser {
             centre = mean;
         };
         control.check()?;
+        let prior_interval = match prior_from(&law, &tilt, certain) {
+            Some(p) => p,
+            None => prior_interval(raster, control)?,
+        };
         let weighed = weigh(evidence, &law, &tilt, certain, window);
         if weighed.z.is_nan() || weighed.z <= 0.0 {
             return Err(out_of_reach(evidence));
@@ -334,6 +343,7 @@ fn exact(raster: &Raster, total: u64, control: &Control) -> Result<Exact, Engine
             z_lo: 1.0,
             z_hi: 1.0,
             law_len: 1,
+            prior: None,
             p_at_most,
             p_at_least,
             log_eq: log_p,
@@ -365,10 +375,39 @@ fn exact(raster: &Raster, total: u64, control: &Control) -> Result<Exact, Engine
         z_lo,
         z_hi,
         law_len: law.len(),
+        prior: prior_from(&law, &tilt, stats.certain),
         p_at_most,
         p_at_least,
         log_eq,
     })
+}
+
+/// Prior mass the tilted law's window may miss for the prior interval to be read off it: below
+/// this no quantile at 0.5% or 99.5% can move but on a tie within it.
+const PRIOR_COVER: f64 = 1e-9;
+
+/// The central `PRIOR_LEVEL` interval of the prior total read off the tilted law of the free
+/// total (P(total = j) = P~(j) e^(log_c - theta j)), when its window holds all but
+/// `PRIOR_COVER` of the prior's mass; `None` otherwise (the total sits far in the prior's tail).
+fn prior_from(law: &Law, tilt: &Tilt, certain: u64) -> Option<(u64, u64)> {
+    let pmf: Vec<f64> = law
+        .values
+        .iter()
+        .enumerate()
+        .map(|(i, &v)| {
+            if v > 0.0 {
+                (v.ln() + tilt.log_c - tilt.theta * (law.lo + i as u64) as f64).exp()
+            } else {
+                0.0
+            }
+        })
+        .collect();
+    let mass: f64 = pmf.iter().sum();
+    if mass.is_nan() || (1.0 - mass).abs() > PRIOR_COVER {
+        return None;
+    }
+    let s = summarise(certain + law.lo, &pmf, PRIOR_LEVEL, &[]);
+    Some((s.interval.lower, s.interval.upper))
 }
 
 /// The central `PRIOR_LEVEL` interval of the prior total, from its untilted law.

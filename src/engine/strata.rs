@@ -61,6 +61,11 @@ impl StratumCells {
         })
     }
 
+    /// The stratum's first cell in raster order.
+    pub fn first_cell(&self) -> u32 {
+        self.cells[0].0
+    }
+
     /// The stratum's own raster, against which its evidence is checked.
     pub fn raster(&self) -> &Raster {
         &self.raster
@@ -199,29 +204,38 @@ pub fn execute_strata(
     let mut parts: Vec<Vec<Part>> = zones.iter().map(|_| Vec::new()).collect();
     let mut checks = Vec::with_capacity(strata.len());
     let mut total_parts = Vec::with_capacity(strata.len() + 1);
-    let mut in_stratum = vec![false; raster.len()];
-    for (s, evidence) in &strata.parts {
-        control.check()?;
-        let position: HashMap<u32, u32> = s
-            .cells
-            .iter()
-            .enumerate()
-            .map(|(i, c)| (c.0, i as u32))
-            .collect();
-        for c in &s.cells {
-            in_stratum[c.index()] = true;
+    // Each raster cell's stratum (NONE outside every one) and its index in that stratum.
+    const NONE: u32 = u32::MAX;
+    let mut owner = vec![NONE; raster.len()];
+    let mut local = vec![0u32; raster.len()];
+    for (si, (s, _)) in strata.parts.iter().enumerate() {
+        for (i, c) in s.cells.iter().enumerate() {
+            owner[c.index()] = si as u32;
+            local[c.index()] = i as u32;
         }
-        let mut owners = Vec::new();
-        let mut sub_zones = Vec::new();
-        for (zi, z) in zones.iter().enumerate() {
-            let cells: Vec<u32> = z
-                .indices()
-                .filter_map(|c| position.get(&c).copied())
-                .collect();
-            if !cells.is_empty() {
-                owners.push(zi);
-                sub_zones.push(Zone::new(z.id(), cells, &s.raster)?);
+    }
+    // Each zone's cells per stratum, in one pass over the zones: (zone, local cells).
+    let mut by_stratum: Vec<Vec<(usize, Vec<u32>)>> = vec![Vec::new(); strata.len()];
+    for (zi, z) in zones.iter().enumerate() {
+        let mut open: HashMap<u32, Vec<u32>> = HashMap::new();
+        for c in z.cells() {
+            let si = owner[c.index()];
+            if si != NONE {
+                open.entry(si).or_default().push(local[c.index()]);
             }
+        }
+        for (si, cells) in open {
+            by_stratum[si as usize].push((zi, cells));
+        }
+    }
+    let in_stratum: Vec<bool> = owner.iter().map(|&o| o != NONE).collect();
+    for ((s, evidence), members) in strata.parts.iter().zip(by_stratum) {
+        control.check()?;
+        let mut owners = Vec::with_capacity(members.len());
+        let mut sub_zones = Vec::with_capacity(members.len());
+        for (zi, cells) in members {
+            owners.push(zi);
+            sub_zones.push(Zone::new(zones[zi].id(), cells, &s.raster)?);
         }
         let n = Normaliser::of(&s.raster, evidence, control)?;
         if !sub_zones.is_empty() {

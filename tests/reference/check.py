@@ -308,6 +308,19 @@ def heterogeneous(t, binary, seed, width, height):
         t.check(abs(tc["prior_mean"] - mean) <= 1e-12 * mean, f"{what}: prior mean {tc['prior_mean']!r} vs {mean!r}")
         t.check(abs(tc["prior_sd"] - sd) <= 1e-12 * sd, f"{what}: prior sd {tc['prior_sd']!r} vs {sd!r}")
         t.check(tc["z_score"] is not None and abs(tc["z_score"] - z_m) <= 1e-9, f"{what}: z-score {tc['z_score']!r} vs {z_m!r}")
+        # reference: mpmath 60-digit DP, the prior's 0.5% and 99.5% quantiles (smallest k with
+        # CDF(k) >= q); a CDF within 1e-9 of q could go either way and is not held against it
+        cdf, lower, upper = mpf(0), None, None
+        for k, pk in enumerate(law_t):
+            cdf += pk
+            if lower is None and cdf >= mpf("0.005"):
+                lower = k
+            if upper is None and cdf >= mpf("0.995"):
+                upper = k
+                break
+        pi = tc["prior_interval"]
+        t.check(pi["level"] == 0.99 and pi["lower"] == lower and pi["upper"] == upper,
+                f"{what}: prior interval {pi} vs [{lower}, {upper}]")
         implausible = min(at_most, at_least) < 1e-6
         t.check(("warning" in tc) == implausible, f"{what}: warning {tc.get('warning')!r}, smaller tail {mp.nstr(min(at_most, at_least), 3)}")
 
