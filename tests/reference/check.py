@@ -16,7 +16,9 @@ document with a value computed here, independently of the engine:
   check;
 - a raster of 300 cells under a range, a detected count (detection 0.85) and a likelihood over
   the total: the zone laws as mixtures over totals, the posterior of the true total, ln P of the
-  observation and the range's tail probabilities, from the same 60-digit programme.
+  observation and the range's tail probabilities, from the same 60-digit programme;
+- the same raster cut into two strata (a range, a detected count) and unconstrained cells, with
+  zones straddling them: each zone's law as the convolution of its parts.
 
 The accuracy contract (issue 2): every reported probability within 1e-13 absolute of the exact
 value, and within 1e-9 relative when the exact value is at least 1e-10. Exits non-zero on any
@@ -393,6 +395,71 @@ def evidence_forms(t, binary, seed, width, height):
             t.prob(tc["p_at_least"], 1 - sum(law_t[: m0 - 15]), f"{what}: P(total >= min)")
 
 
+def convolve(a, b):
+    out = [mpf(0)] * (len(a) + len(b) - 1)
+    for i, x in enumerate(a):
+        if x != 0:
+            for j, y in enumerate(b):
+                out[i + j] += x * y
+    return out
+
+
+def strata_forms(t, binary, seed, width, height):
+    """Two strata (a range, a detected count) and unconstrained cells, zones straddling them."""
+    t.start(f"mpmath DP {width}x{height}, strata")
+    rng = random.Random(seed)
+    n = width * height
+    values = [rng.uniform(0.005, 0.45) for _ in range(n)]
+    rows = lambda r0, r1: [r * width + c for r in range(r0, r1) for c in range(width)]
+    north, south = rows(0, 5), rows(5, 11)
+    free = [c for c in range(n) if c >= 11 * width]
+    mean = lambda cells: math.fsum(values[c] for c in cells)
+    mn, ms = mean(north), mean(south)
+    lo, hi = round(mn) - 4, round(mn) + 6
+    det = round(0.8 * ms)
+    w_north = lambda m: mpf(1) if lo <= m <= hi else mpf(0)
+    w_south = lambda m: binomial(m, det) * mpf(0.8) ** det * (1 - mpf(0.8)) ** (m - det) if m >= det else mpf(0)
+    strata = [
+        {"id": "north", "cells": north, "total": {"min": lo, "max": hi}},
+        {"id": "south", "cells": south, "total": {"detected": det, "detection": 0.8}},
+    ]
+    zones = [
+        ("straddle", sorted(rng.sample(north, 20) + rng.sample(south, 25) + rng.sample(free, 15))),
+        ("north-only", north[:30]),
+        ("unconstrained", free[:40]),
+    ]
+    req = {
+        "raster": {"width": width, "height": height, "values": values},
+        "zones": [{"id": zid, "cells": cells} for zid, cells in zones],
+        "evidence": {"strata": strata},
+    }
+    res = run_eval(binary, req)
+
+    def within(stratum, w, zone):
+        """The law of the zone's cells in the stratum given the stratum's evidence."""
+        inside = [c for c in zone if c in set(stratum)]
+        rest = [c for c in stratum if c not in set(inside)]
+        law_s = poisson_binomial([values[c] for c in inside], len(inside))
+        law_r = poisson_binomial([values[c] for c in rest], len(rest))
+        size = len(stratum)
+        weights = [w(m) for m in range(size + 1)]
+        out = [law_s[k] * sum(weights[m] * law_r[m - k] for m in range(k, min(size, k + len(rest)) + 1)) for k in range(len(inside) + 1)]
+        z = sum(out)
+        return [x / z for x in out]
+
+    for (zid, cells), zres in zip(zones, res["zones"]):
+        # reference: mpmath 60-digit DP; given the strata's evidence the strata are independent,
+        # so the zone's law is the convolution of its parts within each stratum and the prior
+        # law of its unconstrained cells
+        law = within(north, w_north, cells)
+        law = convolve(law, within(south, w_south, cells))
+        law = convolve(law, poisson_binomial([values[c] for c in cells if c in set(free)], len(cells)))
+        law = law[: len(cells) + 1]
+        check_zone(t, zres, law, f"seed {seed}, strata, zone {zid} ({len(cells)} cells)")
+    tc = res["total"]
+    t.check(tc["evidence"] == "strata" and [s["id"] for s in tc["strata"]] == ["north", "south"], f"strata: {tc.get('strata')}")
+
+
 def main():
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--bin", required=True, help="path of the zonetally binary")
@@ -404,6 +471,7 @@ def main():
         lambda: heterogeneous(t, args.bin, 2026, 60, 50),
         lambda: heterogeneous(t, args.bin, 11, 45, 45),
         lambda: evidence_forms(t, args.bin, 7, 20, 15),
+        lambda: strata_forms(t, args.bin, 8, 20, 15),
     ]
     for g in groups:
         try:
