@@ -756,15 +756,32 @@ async fn strata_each_with_their_own_total_reach_zone_counts_and_the_total_check(
     .await
     .json();
     assert_eq!(check["posterior"], total["posterior"]);
-    // The cell posterior takes an overall total only, and says so.
+    // The cell posterior under the same strata. reference: closed form; a top-row cell holds an
+    // event in 2 of 4 fair cells (1/2), cell 4 given at most one event in the pair (1/4 over
+    // 3/4), cell 6 is unconstrained (its prior 1/2)
     let cells = post_json(
         &app,
         "/processes/cell-posterior/execution",
-        &json!({"inputs": {"raster": tea_inputs()["raster"], "evidence": body["inputs"]["evidence"]}}),
+        &json!({"inputs": {"raster": tea_inputs()["raster"], "evidence": body["inputs"]["evidence"], "cells": [0, 4, 6]}}),
         None,
     )
     .await;
-    assert_eq!(cells.status, StatusCode::UNPROCESSABLE_ENTITY);
+    assert_eq!(
+        cells.status,
+        StatusCode::OK,
+        "{}",
+        String::from_utf8_lossy(&cells.body)
+    );
+    let cells = cells.json();
+    for (i, want) in [0.5, 1.0 / 3.0, 0.5].iter().enumerate() {
+        let got = cells["cells"][i]["posterior"].as_f64().unwrap();
+        assert!(
+            (got - want).abs() < 1e-15,
+            "cell {}: {got} vs {want}",
+            cells["cells"][i]["cell"]
+        );
+    }
+    assert_eq!(cells["total"]["posterior"], total["posterior"]);
 }
 
 #[tokio::test]

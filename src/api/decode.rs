@@ -267,7 +267,7 @@ pub struct DecodedCells {
     pub raster: Arc<Raster>,
     pub frame: Frame,
     pub cells: CellSelection,
-    pub evidence: Evidence,
+    pub evidence: DecodedEvidence,
     pub settings: Settings,
 }
 
@@ -368,7 +368,7 @@ pub fn cell_posterior(
         };
         DecodeError::at(pointer, e.to_string())
     })?;
-    let evidence = whole_evidence(req.evidence, &raster)?;
+    let evidence = evidence(req.evidence, &raster)?;
     Ok(DecodedCells {
         raster_key,
         raster,
@@ -1077,17 +1077,6 @@ fn evidence(spec: EvidenceSpec, raster: &Raster) -> Result<DecodedEvidence, Deco
             raster,
         )?)),
         (None, Some(list)) => strata(list, raster).map(DecodedEvidence::Strata),
-    }
-}
-
-/// The evidence when only an overall total is taken (the cell posterior).
-fn whole_evidence(spec: EvidenceSpec, raster: &Raster) -> Result<Evidence, DecodeError> {
-    match evidence(spec, raster)? {
-        DecodedEvidence::Whole(e) => Ok(e),
-        DecodedEvidence::Strata(_) => Err(DecodeError::unusable(
-            "/evidence/strata",
-            "cell-posterior takes an overall `total` only, not strata: send the total over all valid cells (zone-counts and total-check take strata)",
-        )),
     }
 }
 

@@ -43,7 +43,7 @@ pub use plan::{plan, Plan, PlanNode};
 pub use posterior::{
     cell_posterior, plan_cells, posterior, CellPlan, CellPosterior, CellSelection,
 };
-pub use strata::{execute_strata, Strata, StrataEvaluation, StratumCells};
+pub use strata::{cell_posterior_strata, execute_strata, Strata, StrataEvaluation, StratumCells};
 pub use summary::{summarise, Interval, Summary, ZoneSummary};
 
 /// Everything `evaluate` reports: one summary per zone, in request order, and the total check.

@@ -95,6 +95,11 @@ pub struct CellPlan {
 }
 
 impl CellPlan {
+    /// The cells asked for, in request order.
+    pub fn requested(&self) -> impl Iterator<Item = u32> + '_ {
+        self.selection.cells.iter().map(|c| c.0)
+    }
+
     /// Estimated multiply-adds for the whole computation, normaliser included.
     pub fn estimated_cost(&self) -> f64 {
         self.estimated_cost

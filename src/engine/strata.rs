@@ -22,6 +22,7 @@ use super::law::{convolve, Law};
 use super::model::{CellIndex, Raster, Settings, Zone};
 use super::normaliser::{prior_interval, Normaliser, TotalCheck, TotalPosterior, IMPLAUSIBLE_TAIL};
 use super::plan::plan;
+use super::posterior::{cell_posterior, CellPosterior};
 use super::rounding::gamma;
 use super::sets::{trims_for, Cells};
 use super::summary::ZoneSummary;
@@ -324,5 +325,52 @@ pub fn execute_strata(
         zones: summaries,
         strata: checks,
         total: overall,
+    })
+}
+
+/// P(cell has an event | the strata's evidence) for `cells`, in their order: within its stratum
+/// for a cell in one (its stratum's cell posterior), its prior p for an unconstrained cell.
+///
+/// Occurs as `Cancelled` when `control` asks, or as `ImpossibleEvidence` from a stratum's
+/// normaliser.
+pub fn cell_posterior_strata(
+    raster: &Raster,
+    cells: &[u32],
+    strata: &Strata,
+    settings: &Settings,
+    control: &Control,
+) -> Result<CellPosterior, EngineError> {
+    let mut posterior: HashMap<u32, f64> = HashMap::with_capacity(cells.len());
+    let mut worst = 0.0f64;
+    let wanted: std::collections::HashSet<u32> = cells.iter().copied().collect();
+    for (s, evidence) in &strata.parts {
+        control.check()?;
+        let local: Vec<u32> = s
+            .cells
+            .iter()
+            .enumerate()
+            .filter(|(_, c)| wanted.contains(&c.0))
+            .map(|(i, _)| i as u32)
+            .collect();
+        if local.is_empty() {
+            continue;
+        }
+        let n = Normaliser::of(&s.raster, evidence, control)?;
+        let got = cell_posterior(&s.raster, Some(&local), &n, settings, control)?;
+        worst = worst.max(got.error_bound);
+        for (l, (_, _, q)) in local.iter().zip(got.cells) {
+            posterior.insert(s.cells[*l as usize].0, q);
+        }
+    }
+    let values = raster.values();
+    Ok(CellPosterior {
+        cells: cells
+            .iter()
+            .map(|&c| {
+                let p = values[c as usize];
+                (c, p, posterior.get(&c).copied().unwrap_or(p))
+            })
+            .collect(),
+        error_bound: worst,
     })
 }

@@ -3,20 +3,19 @@
 use bytes::Bytes;
 use serde_json::{json, Value};
 
+use super::total_check::with_strata;
 use super::{
     check_cost, input, parse_execute, run_error, schema_of, to_json, Context, Output, Prepared,
     Process, ResponseMode,
 };
-use crate::api::decode::{self, DecodeError, DecodedCells, Frame};
+use crate::api::decode::{self, DecodeError, DecodedCells, DecodedEvidence, Frame};
 use crate::api::formats::{self, Format};
 use crate::api::problem::ApiError;
 use crate::api::wire::{
     CellPosteriorOut, EvidenceSpec, PosteriorDocument, PosteriorInputs, PosteriorSummaries,
     RasterInput, TotalResult,
 };
-use crate::engine::{
-    self, CellPlan, Control, EngineError, Evidence, Raster, Settings, DEFAULT_LEVEL,
-};
+use crate::engine::{self, CellPlan, Control, EngineError, Raster, Settings, DEFAULT_LEVEL};
 
 pub struct CellPosteriorProcess;
 
@@ -71,7 +70,7 @@ pub struct Cells {
     raster_key: Option<String>,
     raster: std::sync::Arc<Raster>,
     frame: Frame,
-    evidence: Evidence,
+    evidence: DecodedEvidence,
     settings: Settings,
     plan: CellPlan,
     /// How `run` encodes the results (JSON unless chosen otherwise).
@@ -101,10 +100,31 @@ pub fn compute(
     control: &Control,
 ) -> Result<PosteriorDocument, EngineError> {
     let d = c;
-    let normaliser =
-        ctx.normalisers
-            .normaliser(d.raster_key.as_deref(), &d.raster, &d.evidence, control)?;
-    let post = engine::posterior(&d.raster, &c.plan, &normaliser, &d.settings, control)?;
+    let (post, total) = match &d.evidence {
+        DecodedEvidence::Whole(evidence) => {
+            let normaliser = ctx.normalisers.normaliser(
+                d.raster_key.as_deref(),
+                &d.raster,
+                evidence,
+                control,
+            )?;
+            let post = engine::posterior(&d.raster, &c.plan, &normaliser, &d.settings, control)?;
+            (
+                post,
+                TotalResult::of(normaliser.check.clone(), DEFAULT_LEVEL, true),
+            )
+        }
+        DecodedEvidence::Strata(strata) => {
+            let cells: Vec<u32> = c.plan.requested().collect();
+            let post =
+                engine::cell_posterior_strata(&d.raster, &cells, strata, &d.settings, control)?;
+            let run = engine::execute_strata(&d.raster, &[], strata, &d.settings, control)?;
+            (
+                post,
+                with_strata(run.total, run.strata, DEFAULT_LEVEL, true),
+            )
+        }
+    };
     Ok(PosteriorDocument {
         cells: post
             .cells
@@ -116,7 +136,7 @@ pub fn compute(
             })
             .collect(),
         error_bound: post.error_bound,
-        total: TotalResult::of(normaliser.check.clone(), DEFAULT_LEVEL, true),
+        total,
     })
 }
 
