@@ -4,9 +4,11 @@
 #![no_main]
 
 use libfuzzer_sys::fuzz_target;
-use zonetally::api::decode::{zone_counts, DecodeError, Frame, HeldRaster, Limits, RasterSource};
+use zonetally::api::decode::{
+    zone_counts, DecodeError, DecodedEvidence, Frame, HeldRaster, Limits, RasterSource,
+};
 use zonetally::api::wire::EvalRequest;
-use zonetally::engine::{execute, plan, Control, Normaliser, Raster};
+use zonetally::engine::{execute, execute_strata, plan, Control, EngineError, Normaliser, Raster};
 
 /// Resolves nothing and reads no file: the fuzzer must not touch the disk.
 struct Sealed;
@@ -56,18 +58,30 @@ fuzz_target!(|data: &[u8]| {
         return;
     }
     let control = Control::new();
-    let Ok(normaliser) = Normaliser::of(&decoded.raster, &decoded.evidence, &control) else {
-        return;
+    let summaries = match &decoded.evidence {
+        DecodedEvidence::Whole(evidence) => {
+            let Ok(normaliser) = Normaliser::of(&decoded.raster, evidence, &control) else {
+                return;
+            };
+            execute(
+                &plan,
+                &decoded.raster,
+                set,
+                &normaliser,
+                &decoded.settings,
+                &control,
+            )
+            .expect("a decoded, possible request computes")
+        }
+        DecodedEvidence::Strata(strata) => {
+            match execute_strata(&decoded.raster, set, strata, &decoded.settings, &control) {
+                Ok(run) => run.zones,
+                // Evidence whose totals have no prior mass f64 can hold is found only here.
+                Err(EngineError::ImpossibleEvidence(_)) => return,
+                Err(e) => panic!("a decoded request under strata failed: {e}"),
+            }
+        }
     };
-    let summaries = execute(
-        &plan,
-        &decoded.raster,
-        set,
-        &normaliser,
-        &decoded.settings,
-        &control,
-    )
-    .expect("a decoded, possible request computes");
     assert_eq!(summaries.len(), set.len());
     for s in &summaries {
         assert!(
