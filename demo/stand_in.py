@@ -78,6 +78,10 @@ def raster_cells(body):
 def make_handler(zonetally, page_dir=os.path.join(DEMO, "page"), data_dir=DEMO, sync_cells=None):
     jobs = {}
     lock = threading.Lock()
+    # A status poll is held until its job ends or this many seconds pass. Headless browsers under a
+    # virtual clock (the rendered tests) pause that clock only while a fetch is pending: answered at
+    # once, their polls would spend the whole time budget while the job still runs in real time.
+    hold_seconds = 30
 
     def run_job(job_id, body):
         status, doc = execute(zonetally, body)
@@ -86,6 +90,7 @@ def make_handler(zonetally, page_dir=os.path.join(DEMO, "page"), data_dir=DEMO, 
             job["status"] = "successful" if status == 200 else "failed"
             job["message"] = "done" if status == 200 else doc.get("detail", "")
             job["result"] = (status, doc)
+        job["ended"].set()
 
     def status_info(job_id):
         job = jobs[job_id]
@@ -118,6 +123,10 @@ def make_handler(zonetally, page_dir=os.path.join(DEMO, "page"), data_dir=DEMO, 
             parts = path.strip("/").split("/")
             if parts[0] == "jobs" and len(parts) in (2, 3):
                 with lock:
+                    ended = jobs[parts[1]]["ended"] if parts[1] in jobs else None
+                if ended is not None and len(parts) == 2:
+                    ended.wait(hold_seconds)
+                with lock:
                     if parts[1] not in jobs:
                         return self.send_json(*problem(404, "no such job", f"no job `{parts[1]}`"))
                     if len(parts) == 2:
@@ -149,7 +158,7 @@ def make_handler(zonetally, page_dir=os.path.join(DEMO, "page"), data_dir=DEMO, 
             if "respond-async" in prefer:
                 job_id = uuid.uuid4().hex
                 with lock:
-                    jobs[job_id] = {"status": "running", "message": "queued"}
+                    jobs[job_id] = {"status": "running", "message": "queued", "ended": threading.Event()}
                     info = status_info(job_id)
                 threading.Thread(target=run_job, args=(job_id, body), daemon=True).start()
                 return self.send_json(201, info, [("Location", f"/jobs/{job_id}"), ("Preference-Applied", "respond-async")])
