@@ -3,6 +3,8 @@
 
 mod service_support;
 
+use std::sync::atomic::{AtomicU32, Ordering};
+
 use axum::body::Body;
 use axum::http::{Request, StatusCode};
 use serde_json::json;
@@ -20,10 +22,14 @@ fn keyed(public_metrics: bool) -> Config {
     keyed_at(public_metrics, 0)
 }
 
+/// Each call writes its own key file: tests run side by side, and one test rewriting a file
+/// another is reading would hand it an empty file.
 fn keyed_at(public_metrics: bool, rate_limit: u32) -> Config {
+    static NEXT: AtomicU32 = AtomicU32::new(0);
     let path = std::env::temp_dir().join(format!(
-        "zonetally-keys-{}-{public_metrics}-{rate_limit}",
-        std::process::id()
+        "zonetally-keys-{}-{}",
+        std::process::id(),
+        NEXT.fetch_add(1, Ordering::Relaxed)
     ));
     std::fs::write(
         &path,
