@@ -785,6 +785,73 @@ async fn strata_each_with_their_own_total_reach_zone_counts_and_the_total_check(
 }
 
 #[tokio::test]
+async fn strata_by_geometry_or_by_label_hold_the_cells_a_list_names() {
+    let (_, app) = state_with(config());
+    // A georeferenced 4x3 raster, 10 m cells from (1000, 2000) down to (1040, 1970); cell 8
+    // (row 2, column 0) is nodata, so no stratum can hold it.
+    let mut raster = uneven_raster(4, 3);
+    raster["values"][8] = Value::Null;
+    raster["geotransform"] = json!([1000.0, 10.0, 0.0, 2000.0, 0.0, -10.0]);
+    let zones = json!([
+        {"id": "north", "rect": {"row": 0, "col": 0, "rows": 1, "cols": 4}},
+        {"id": "west", "rect": {"row": 0, "col": 0, "rows": 3, "cols": 2}},
+        {"id": "east", "cells": [3, 7, 11]}
+    ]);
+    let square = |x0: f64, y0: f64, x1: f64, y1: f64| {
+        json!([[[x0, y0], [x1, y0], [x1, y1], [x0, y1], [x0, y0]]])
+    };
+    // The same two strata three ways: the top row with 2 events, and the 2x2 block below it on
+    // the west (cells 4, 5, 9 once nodata cell 8 is left out) with 1 to 2 events.
+    let by_cells = json!([
+        {"id": "upper", "rect": {"row": 0, "col": 0, "rows": 1, "cols": 4}, "total": 2},
+        {"id": "lower-west", "cells": [4, 5, 9], "total": {"min": 1, "max": 2}}
+    ]);
+    // reference: common practice (the cell-centre rule of raster burning, as GDAL's
+    // rasteriser and rasterio.features.rasterize apply it by default): a cell belongs to a
+    // polygon when its centre lies inside; centres here sit 5 m from every edge.
+    let by_geometry = json!([
+        {"id": "upper", "geometry": {"type": "Polygon", "coordinates": square(1000.0, 1990.0, 1040.0, 2000.0)}, "total": 2},
+        {"id": "lower-west", "geometry": {"type": "MultiPolygon", "coordinates": [
+            square(1000.0, 1980.0, 1020.0, 1990.0), square(1000.0, 1970.0, 1020.0, 1980.0)
+        ]}, "total": {"min": 1, "max": 2}}
+    ]);
+    let by_label = json!([
+        {"id": "upper", "label": 7, "total": 2},
+        {"id": "lower-west", "label": -3, "total": {"min": 1, "max": 2}}
+    ]);
+    let labels =
+        json!({"width": 4, "height": 3, "values": [7, 7, 7, 7, -3, -3, 0, 0, -3, -3, 0, null]});
+    let mut answers = Vec::new();
+    for evidence in [
+        json!({"strata": by_cells}),
+        json!({"strata": by_geometry}),
+        json!({"strata": by_label, "labels": labels}),
+    ] {
+        let body = json!({"inputs": {"raster": raster, "zones": zones, "evidence": evidence}});
+        let v = post_json(&app, "/processes/zone-counts/execution", &body, None)
+            .await
+            .ok_json();
+        let check = post_json(
+            &app,
+            "/processes/total-check/execution",
+            &json!({"inputs": {"raster": raster, "evidence": evidence}}),
+            None,
+        )
+        .await
+        .ok_json();
+        answers.push((v["zones"].clone(), v["total"].clone(), check));
+    }
+    // The zone "north" is the upper stratum: exactly 2 (reference: closed form).
+    assert_eq!(
+        answers[0].0[0]["pmf"],
+        json!({"offset": 2, "values": [1.0]})
+    );
+    assert_eq!(answers[0].1["strata"][1]["cells"], 3);
+    assert_eq!(answers[1], answers[0], "geometry strata");
+    assert_eq!(answers[2], answers[0], "label strata");
+}
+
+#[tokio::test]
 async fn cell_posterior_matches_enumeration() {
     let (_, app) = state_with(config());
     let p = [0.2, 0.5, 0.9];

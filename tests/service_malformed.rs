@@ -298,6 +298,88 @@ fn cases() -> Vec<Case> {
             Some("/inputs/evidence/strata/0"),
         ),
         case(
+            "a stratum with both a geometry and cells",
+            with(|b| {
+                b["inputs"]["evidence"] = json!({"strata": [
+                    {"id": "a", "cells": [0], "geometry": {"type": "Polygon", "coordinates": [[[0, 0], [1, 0], [1, 1], [0, 0]]]}, "total": 0}
+                ]})
+            }),
+            400,
+            inv,
+            Some("/inputs/evidence/strata/0"),
+        ),
+        case(
+            "a stratum geometry sent as a Feature",
+            with(|b| {
+                b["inputs"]["evidence"] = json!({"strata": [
+                    {"id": "a", "geometry": {"type": "Feature", "properties": {}, "geometry": {"type": "Polygon", "coordinates": [[[0, 0], [4, 0], [4, 1], [0, 0]]]}}, "total": 1}
+                ]})
+            }),
+            422,
+            unusable,
+            Some("/inputs/evidence/strata/0/geometry/type"),
+        ),
+        case(
+            "a stratum geometry off the raster",
+            with(|b| {
+                b["inputs"]["evidence"] = json!({"strata": [
+                    {"id": "a", "geometry": {"type": "Polygon", "coordinates": [[[10, 10], [14, 10], [14, 14], [10, 10]]]}, "total": 1}
+                ]})
+            }),
+            400,
+            inv,
+            Some("/inputs/evidence/strata/0/geometry"),
+        ),
+        case(
+            "a stratum by label without a label raster",
+            with(|b| {
+                b["inputs"]["evidence"] = json!({"strata": [{"id": "a", "label": 1, "total": 1}]})
+            }),
+            400,
+            inv,
+            Some("/inputs/evidence/strata/0/label"),
+        ),
+        case(
+            "a stratum by a label no cell holds",
+            with(|b| {
+                b["inputs"]["evidence"] = json!({"strata": [{"id": "a", "label": 9, "total": 1}],
+                    "labels": {"width": 4, "height": 2, "values": [1, 1, 0, 0, 2, 2, 0, 0]}})
+            }),
+            400,
+            inv,
+            Some("/inputs/evidence/strata/0/label"),
+        ),
+        case(
+            "a label raster of another size",
+            with(|b| {
+                b["inputs"]["evidence"] = json!({"strata": [{"id": "a", "label": 1, "total": 1}],
+                    "labels": {"width": 2, "height": 2, "values": [1, 1, 0, 0]}})
+            }),
+            400,
+            inv,
+            Some("/inputs/evidence/labels"),
+        ),
+        case(
+            "a label raster no stratum uses",
+            with(|b| {
+                b["inputs"]["evidence"] = json!({"strata": [{"id": "a", "cells": [0, 1], "total": 1}],
+                    "labels": {"width": 4, "height": 2, "values": [1, 1, 0, 0, 2, 2, 0, 0]}})
+            }),
+            400,
+            inv,
+            Some("/inputs/evidence/labels"),
+        ),
+        case(
+            "a label raster beside an overall total",
+            with(|b| {
+                b["inputs"]["evidence"]["labels"] =
+                    json!({"width": 4, "height": 2, "values": [1, 1, 0, 0, 2, 2, 0, 0]})
+            }),
+            400,
+            inv,
+            Some("/inputs/evidence/labels"),
+        ),
+        case(
             "a stratum total its cells cannot reach",
             with(|b| {
                 b["inputs"]["evidence"] =

@@ -7,6 +7,7 @@
 //! service resolves references from its cache, `eval` refuses them. Decoders of other formats
 //! (GeoTIFF, GeoJSON) go beside the JSON ones here, each producing the same engine types.
 
+use std::collections::HashMap;
 use std::sync::Arc;
 
 use base64::Engine as _;
@@ -19,7 +20,9 @@ use crate::engine::{
     MAX_LIKELIHOOD_VALUES,
 };
 use crate::geo::rect::{rect_cells, RectProblem};
-use crate::geo::zones::{parse_zones, rasterize, zones_from_labels, Polygon, ZoneOptions};
+use crate::geo::zones::{
+    parse_geometry, parse_zones, rasterize, zones_from_labels, Polygon, ZoneOptions,
+};
 use crate::geo::{geotiff, GeoError, GeoTransform, Grid};
 
 use super::wire::{
@@ -293,7 +296,7 @@ pub fn zone_counts(
             ),
         ));
     }
-    let evidence = evidence(req.evidence, &held.raster)?;
+    let evidence = evidence(req.evidence, &held, limits, rasters)?;
     Ok(Decoded {
         raster_key,
         raster: held.raster,
@@ -328,7 +331,7 @@ pub fn total_check(
     )
     .map_err(|e| DecodeError::at("/summaries/interval", e.to_string()))?;
     let (raster_key, held) = raster_input(req.raster, limits, rasters)?;
-    let evidence = evidence(req.evidence, &held.raster)?;
+    let evidence = evidence(req.evidence, &held, limits, rasters)?;
     Ok(DecodedTotal {
         raster_key,
         raster: held.raster,
@@ -347,7 +350,7 @@ pub fn cell_posterior(
     let settings = Settings::new(DEFAULT_LEVEL, Vec::new(), tolerance, false)
         .map_err(|e| DecodeError::at("/summaries/tolerance", e.to_string()))?;
     let (raster_key, held) = raster_input(req.raster, limits, rasters)?;
-    let raster = held.raster;
+    let raster = Arc::clone(&held.raster);
     if let Some(cells) = &req.cells {
         if cells.len() as u64 > limits.max_zone_cells {
             return Err(DecodeError::limit(
@@ -368,7 +371,7 @@ pub fn cell_posterior(
         };
         DecodeError::at(pointer, e.to_string())
     })?;
-    let evidence = evidence(req.evidence, &raster)?;
+    let evidence = evidence(req.evidence, &held, limits, rasters)?;
     Ok(DecodedCells {
         raster_key,
         raster,
@@ -822,16 +825,33 @@ fn label_zones(
     out: &mut ZoneBuilder,
 ) -> Result<(), DecodeError> {
     const BASE: &str = "/zones/labels";
-    let samples = match labels.labels {
-        RasterInput::Inline(spec) => inline_samples(spec, limits, BASE)?,
+    let found = label_raster(labels.labels, BASE, held, limits, rasters)?;
+    out.check_count(found.len())?;
+    for (label, cells) in found {
+        out.add(label.to_string(), cells, ZoneShape::Cells, BASE)?;
+    }
+    Ok(())
+}
+
+/// The cells of each label of a label raster on the raster's grid, in increasing label order
+/// (0 and nodata are no label); errors point at `base`.
+fn label_raster(
+    input: RasterInput,
+    base: &str,
+    held: &HeldRaster,
+    limits: &Limits,
+    rasters: &dyn RasterSource,
+) -> Result<Vec<(i64, Vec<u32>)>, DecodeError> {
+    let samples = match input {
+        RasterInput::Inline(spec) => inline_samples(spec, limits, base)?,
         RasterInput::File(f) => {
             if !is_tiff(&f.media_type) {
                 return Err(DecodeError::at(
-                    format!("{BASE}/mediaType"),
+                    format!("{base}/mediaType"),
                     format!("media type `{}` is not offered for a label raster: send `{}`", f.media_type, TIFF_TYPES[0]),
                 ));
             }
-            let pointer = format!("{BASE}/value");
+            let pointer = format!("{base}/value");
             let bytes = base64_bytes(&f.value, limits.max_raster_file_bytes(), &pointer)?;
             tiff_samples(&bytes, limits, &pointer)?
         }
@@ -839,14 +859,14 @@ fn label_zones(
             let bytes = rasters
                 .read_file(&h.href, limits.max_raster_file_bytes())
                 .map_err(|mut e| {
-                    e.pointer = format!("{BASE}/href");
+                    e.pointer = format!("{base}/href");
                     e
                 })?;
-            tiff_samples(&bytes, limits, &format!("{BASE}/href"))?
+            tiff_samples(&bytes, limits, &format!("{base}/href"))?
         }
         RasterInput::Href(_) | RasterInput::Ref(_) => {
             return Err(DecodeError::at(
-                BASE,
+                base,
                 "a label raster cannot be a raster held by this service (those hold probabilities): send it inline or as a GeoTIFF",
             ))
         }
@@ -854,7 +874,7 @@ fn label_zones(
     let (grid, want) = (samples.frame.grid, held.frame.grid);
     if (grid.width, grid.height) != (want.width, want.height) {
         return Err(DecodeError::at(
-            BASE,
+            base,
             format!(
                 "the label raster is {}x{}, the probability raster {}x{}: labels must lie on the same grid",
                 grid.width, grid.height, want.width, want.height
@@ -864,27 +884,22 @@ fn label_zones(
     if let (Some(a), Some(b)) = (grid.transform, want.transform) {
         if a != b {
             return Err(DecodeError::at(
-                BASE,
+                base,
                 format!("the label raster's geotransform {:?} differs from the probability raster's {:?}: labels must lie on the same grid", a.to_gdal(), b.to_gdal()),
             ));
         }
     }
-    let found = zones_from_labels(&samples.values, None).map_err(|e| match e {
+    zones_from_labels(&samples.values, None).map_err(|e| match e {
         GeoError::LabelNotInteger { index, value } => DecodeError::at(
-            BASE,
+            base,
             format!(
-                "the label at row {}, column {} is {value}: labels are whole numbers (0 or nodata for no zone)",
+                "the label at row {}, column {} is {value}: labels are whole numbers (0 or nodata for none)",
                 index as u64 / u64::from(grid.width.max(1)),
                 index as u64 % u64::from(grid.width.max(1))
             ),
         ),
-        other => geo_error(other, BASE),
-    })?;
-    out.check_count(found.len())?;
-    for (label, cells) in found {
-        out.add(label.to_string(), cells, ZoneShape::Cells, BASE)?;
-    }
-    Ok(())
+        other => geo_error(other, base),
+    })
 }
 
 /// Collects zones in request order: drops nodata cells, keeps zones with no valid cell aside,
@@ -1061,7 +1076,12 @@ pub enum DecodedEvidence {
 }
 
 /// Decodes the evidence against the raster: `total` or `strata`, never both.
-fn evidence(spec: EvidenceSpec, raster: &Raster) -> Result<DecodedEvidence, DecodeError> {
+fn evidence(
+    spec: EvidenceSpec,
+    held: &HeldRaster,
+    limits: &Limits,
+    rasters: &dyn RasterSource,
+) -> Result<DecodedEvidence, DecodeError> {
     match (spec.total, spec.strata) {
         (Some(_), Some(_)) => Err(DecodeError::unusable(
             "/evidence",
@@ -1071,47 +1091,136 @@ fn evidence(spec: EvidenceSpec, raster: &Raster) -> Result<DecodedEvidence, Deco
             "/evidence",
             "the evidence has neither `total` nor `strata`: give an overall total, or one total per stratum",
         )),
+        (Some(_), None) if spec.labels.is_some() => Err(DecodeError::at(
+            "/evidence/labels",
+            "`labels` chooses the cells of strata by `label`, and an overall `total` has no strata: drop `labels`",
+        )),
         (Some(total), None) => Ok(DecodedEvidence::Whole(total_form(
             total,
             "/evidence/total",
-            raster,
+            &held.raster,
         )?)),
-        (None, Some(list)) => strata(list, raster).map(DecodedEvidence::Strata),
+        (None, Some(list)) => {
+            strata(list, spec.labels, held, limits, rasters).map(DecodedEvidence::Strata)
+        }
     }
 }
 
 /// Decodes the strata: each one's cells, then its total against its own cells.
-fn strata(list: Vec<StratumSpec>, raster: &Raster) -> Result<Strata, DecodeError> {
+fn strata(
+    list: Vec<StratumSpec>,
+    labels: Option<RasterInput>,
+    held: &HeldRaster,
+    limits: &Limits,
+    rasters: &dyn RasterSource,
+) -> Result<Strata, DecodeError> {
+    if list.len() > limits.max_zones {
+        return Err(DecodeError::limit(
+            "/evidence/strata",
+            format!(
+                "{} strata exceed this service's limit of {} (the zone limit): merge strata, or leave some cells unconstrained",
+                list.len(),
+                limits.max_zones
+            ),
+        ));
+    }
+    let raster = &*held.raster;
+    let labelled = match labels {
+        Some(input) => {
+            if !list.iter().any(|s| s.label.is_some()) {
+                return Err(DecodeError::at(
+                    "/evidence/labels",
+                    "no stratum is chosen by `label`: drop `labels`, or give strata a `label`",
+                ));
+            }
+            let found = label_raster(input, "/evidence/labels", held, limits, rasters)?;
+            Some(found.into_iter().collect::<HashMap<i64, Vec<u32>>>())
+        }
+        None => None,
+    };
     let valid = raster.stats().valid;
-    let mut held = 0u64;
+    let mut vertices = limits.max_vertices;
+    let mut held_cells = 0u64;
     let mut parts = Vec::with_capacity(list.len());
     for (i, s) in list.into_iter().enumerate() {
         let at = format!("/evidence/strata/{i}");
-        let cells = match (s.cells, s.rect) {
-            (Some(c), None) => c,
-            (None, Some(r)) => rect(&s.id, r, raster, &at)?,
-            _ => {
+        let chosen = [
+            s.cells.is_some(),
+            s.rect.is_some(),
+            s.geometry.is_some(),
+            s.label.is_some(),
+        ];
+        let n = chosen.iter().filter(|&&c| c).count();
+        if n != 1 {
+            return Err(DecodeError::at(
+                at,
+                format!(
+                    "stratum `{}` gives {n} of `cells`, `rect`, `geometry` and `label`: choose its cells by exactly one",
+                    s.id
+                ),
+            ));
+        }
+        let (cells, field) = if let Some(c) = s.cells {
+            (c, "cells")
+        } else if let Some(r) = s.rect {
+            (rect(&s.id, r, raster, &at)?, "rect")
+        } else if let Some(g) = &s.geometry {
+            let pointer = format!("{at}/geometry");
+            let (polygons, used) =
+                parse_geometry(g.get().as_bytes(), vertices).map_err(|e| geo_error(e, &pointer))?;
+            vertices -= used;
+            let cells = rasterize(&polygons, &held.frame.grid, false);
+            (
+                valid_cells(&s.id, cells, raster, "geometry", &pointer)?,
+                "geometry",
+            )
+        } else {
+            let label = s.label.unwrap_or_default();
+            let pointer = format!("{at}/label");
+            let Some(map) = &labelled else {
                 return Err(DecodeError::at(
-                    at,
-                    format!("stratum `{}` needs exactly one of `cells` or `rect`", s.id),
-                ))
-            }
+                    pointer,
+                    format!(
+                        "stratum `{}` is chosen by label {label}, but the evidence has no `labels` raster: give `evidence.labels`",
+                        s.id
+                    ),
+                ));
+            };
+            let Some(cells) = map.get(&label) else {
+                let mut held: Vec<i64> = map.keys().copied().collect();
+                held.sort_unstable();
+                let shown: Vec<String> = held.iter().take(10).map(i64::to_string).collect();
+                let more = if held.len() > 10 { ", ..." } else { "" };
+                return Err(DecodeError::at(
+                    pointer,
+                    format!(
+                        "stratum `{}` is chosen by label {label}, which no cell of `evidence.labels` holds: use one of its {} labels ({}{more})",
+                        s.id,
+                        held.len(),
+                        shown.join(", ")
+                    ),
+                ));
+            };
+            (
+                valid_cells(&s.id, cells.clone(), raster, "label", &pointer)?,
+                "label",
+            )
         };
         // Disjoint strata hold at most every valid cell: more means some overlap, refused
         // before anything larger is built.
-        held += cells.len() as u64;
-        if held > valid {
+        held_cells += cells.len() as u64;
+        if held_cells > valid {
             return Err(DecodeError::unusable(
-                format!("{at}/cells"),
+                format!("{at}/{field}"),
                 format!(
-                    "the strata up to `{}` hold {held} cells, more than the raster's {valid} valid cells: strata must be disjoint and hold valid cells only",
+                    "the strata up to `{}` hold {held_cells} cells, more than the raster's {valid} valid cells: strata must be disjoint and hold valid cells only",
                     s.id
                 ),
             ));
         }
         let cells = StratumCells::new(s.id, cells, raster).map_err(|e| {
             DecodeError::at(
-                format!("{at}/cells"),
+                format!("{at}/{field}"),
                 e.to_string().replacen("zone", "stratum", 1),
             )
         })?;
@@ -1124,6 +1233,28 @@ fn strata(list: Vec<StratumSpec>, raster: &Raster) -> Result<Strata, DecodeError
         }
         _ => DecodeError::at("/evidence/strata", e.to_string()),
     })
+}
+
+/// The valid cells of a stratum chosen by an area (a geometry or a label): nodata cells are not
+/// part of the raster, so they are left out; a stratum left with none is refused.
+fn valid_cells(
+    id: &str,
+    mut cells: Vec<u32>,
+    raster: &Raster,
+    by: &str,
+    pointer: &str,
+) -> Result<Vec<u32>, DecodeError> {
+    let covered = cells.len();
+    cells.retain(|&c| raster.cell_problem(c).is_none());
+    if cells.is_empty() {
+        return Err(DecodeError::at(
+            pointer,
+            format!(
+                "stratum `{id}`'s {by} holds no valid cell ({covered} cells, all nodata or none at all): check that it lies on the raster, in the raster's CRS"
+            ),
+        ));
+    }
+    Ok(cells)
 }
 
 /// Decodes one total in each of its forms, every mistake reported at its own field under `at`.

@@ -264,6 +264,10 @@ pub struct EvidenceSpec {
     /// stratum are unconstrained.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub strata: Option<Vec<StratumSpec>>,
+    /// A label raster on the raster's grid, for strata chosen by `label`: whole numbers, 0 or
+    /// nodata for no stratum.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub labels: Option<RasterInput>,
 }
 
 impl EvidenceSpec {
@@ -272,19 +276,30 @@ impl EvidenceSpec {
         EvidenceSpec {
             total: Some(total.into()),
             strata: None,
+            labels: None,
         }
     }
 }
 
-/// One stratum: its cells (a list or a rectangle) and the evidence on its total.
+/// One stratum: its cells, chosen by exactly one of `cells`, `rect`, `geometry` or `label`, and
+/// the evidence on its total. Nodata cells under a geometry or label are left out.
 #[derive(Clone, Debug, Deserialize, Serialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct StratumSpec {
     pub id: String,
+    /// Row-major cell indices.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub cells: Option<Vec<u32>>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub rect: Option<RectSpec>,
+    /// A GeoJSON Polygon or MultiPolygon in the raster's CRS: the cells whose centres it holds
+    /// (the centre rule keeps adjoining districts disjoint).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    #[schema(value_type = Option<Object>)]
+    pub geometry: Option<Box<RawValue>>,
+    /// The cells holding this value in `evidence.labels`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub label: Option<i64>,
     /// The stratum's total, in any form `evidence.total` takes.
     #[schema(value_type = TotalSpec)]
     pub total: serde_json::Value,
@@ -481,6 +496,8 @@ pub struct TotalResult {
 #[derive(Clone, Debug, Serialize, Deserialize, PartialEq, ToSchema)]
 pub struct StratumCheck {
     pub id: String,
+    /// The valid cells the stratum holds (for a geometry or label, those the request chose).
+    pub cells: u64,
     #[schema(no_recursion)]
     pub check: TotalResult,
 }

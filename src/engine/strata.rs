@@ -118,6 +118,11 @@ impl Strata {
         self.parts.is_empty()
     }
 
+    /// How many cells each stratum holds, in the strata's order.
+    pub fn cell_counts(&self) -> Vec<usize> {
+        self.parts.iter().map(|p| p.0.cells.len()).collect()
+    }
+
     /// Cells held by some stratum.
     pub fn cell_count(&self) -> usize {
         self.parts.iter().map(|p| p.0.cells.len()).sum()

@@ -55,8 +55,31 @@ pub struct ZoneOptions<'a> {
 /// A document without a `crs` member is taken to be in the raster's CRS (coordinates are
 /// never reprojected). Ids must be present and unique.
 pub fn parse_zones(json: &[u8], options: &ZoneOptions<'_>) -> Result<Vec<Zone>, GeoError> {
+    let (doc, _) = parse_object(json, options.max_vertices)?;
+    build_zones(doc, options)
+}
+
+/// Parse one bare GeoJSON Polygon or MultiPolygon geometry, in the raster's CRS.
+///
+/// Returns the polygons and the positions read; more than `max_vertices` positions are refused
+/// while streaming. Pointers in errors are relative to the geometry.
+pub fn parse_geometry(json: &[u8], max_vertices: u64) -> Result<(Vec<Polygon>, u64), GeoError> {
+    let (doc, vertices) = parse_object(json, max_vertices)?;
+    if let Some(kind @ ("Feature" | "FeatureCollection")) = doc.kind.as_deref() {
+        return Err(shape_error(
+            "/type".into(),
+            "a geometry is expected here, not a feature",
+            format!("{kind:?}"),
+            "give the Polygon or MultiPolygon geometry itself",
+        ));
+    }
+    Ok((geometry_polygons(doc, "")?, vertices))
+}
+
+/// Streams one JSON object, counting positions; returns it and the positions read.
+fn parse_object(json: &[u8], max_vertices: u64) -> Result<(RawObject, u64), GeoError> {
     let ctx = Ctx {
-        max_vertices: options.max_vertices,
+        max_vertices,
         vertices: Cell::new(0),
         path: RefCell::new(Vec::new()),
         failure: RefCell::new(None),
@@ -65,11 +88,10 @@ pub fn parse_zones(json: &[u8], options: &ZoneOptions<'_>) -> Result<Vec<Zone>, 
     let parsed = ObjectSeed { ctx: &ctx }
         .deserialize(&mut de)
         .and_then(|doc| de.end().map(|()| doc));
-    let doc = match parsed {
-        Ok(doc) => doc,
-        Err(err) => return Err(ctx.failure.take().unwrap_or_else(|| json_error(&ctx, &err))),
-    };
-    build_zones(doc, options)
+    match parsed {
+        Ok(doc) => Ok((doc, ctx.vertices.get())),
+        Err(err) => Err(ctx.failure.take().unwrap_or_else(|| json_error(&ctx, &err))),
+    }
 }
 
 fn json_error(ctx: &Ctx, err: &serde_json::Error) -> GeoError {

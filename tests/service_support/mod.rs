@@ -41,6 +41,16 @@ impl Reply {
         serde_json::from_slice(&self.body)
             .unwrap_or_else(|e| panic!("not JSON ({e}): {}", String::from_utf8_lossy(&self.body)))
     }
+    /// The body as JSON, after asserting the status is 200 (the body is shown when it is not).
+    pub fn ok_json(&self) -> Value {
+        assert_eq!(
+            self.status,
+            StatusCode::OK,
+            "{}",
+            String::from_utf8_lossy(&self.body)
+        );
+        self.json()
+    }
     pub fn header(&self, name: &str) -> Option<String> {
         self.headers
             .get(name)

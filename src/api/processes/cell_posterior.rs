@@ -121,7 +121,13 @@ pub fn compute(
             let run = engine::execute_strata(&d.raster, &[], strata, &d.settings, control)?;
             (
                 post,
-                with_strata(run.total, run.strata, DEFAULT_LEVEL, true),
+                with_strata(
+                    run.total,
+                    run.strata,
+                    strata.cell_counts(),
+                    DEFAULT_LEVEL,
+                    true,
+                ),
             )
         }
     };

@@ -89,15 +89,22 @@ pub fn compute(
         }
         DecodedEvidence::Strata(strata) => {
             let run = engine::execute_strata(&d.raster, &[], strata, &d.settings, control)?;
-            Ok(with_strata(run.total, run.strata, level, pmf))
+            Ok(with_strata(
+                run.total,
+                run.strata,
+                strata.cell_counts(),
+                level,
+                pmf,
+            ))
         }
     }
 }
 
-/// The overall check with each stratum's beside it.
+/// The overall check with each stratum's beside it; `cells` counts each stratum's cells.
 pub fn with_strata(
     total: TotalCheck,
     strata: Vec<(String, TotalCheck)>,
+    cells: Vec<usize>,
     level: f64,
     pmf: bool,
 ) -> TotalResult {
@@ -105,8 +112,10 @@ pub fn with_strata(
     out.strata = Some(
         strata
             .into_iter()
-            .map(|(id, check)| StratumCheck {
+            .zip(cells)
+            .map(|((id, check), cells)| StratumCheck {
                 id,
+                cells: cells as u64,
                 check: TotalResult::of(check, level, pmf),
             })
             .collect(),

@@ -122,7 +122,13 @@ pub fn compute(
                 &d.settings,
                 control,
             )?;
-            let total = with_strata(run.total, run.strata, d.settings.level(), d.settings.pmf());
+            let total = with_strata(
+                run.total,
+                run.strata,
+                strata.cell_counts(),
+                d.settings.level(),
+                d.settings.pmf(),
+            );
             (run.zones, total)
         }
     };

@@ -10,6 +10,7 @@ cell-posterior for a GeoTIFF, and checks:
   - the CSV loads with the csv module, one row per zone, numbers equal to the JSON results;
   - the GeoTIFF opens with rasterio: same size, transform, CRS and nodata as the input, band 1
     the JSON posterior and band 2 the prior of every cell;
+  - strata chosen by demo polygons hold the valid cells rasterio.features.rasterize burns;
   - `zonetally eval --raster ... --zones ... --format geojson` gives the service's GeoJSON;
   - malformed files (a truncated GeoTIFF, one declaring 10^12 pixels, a GeoJSON ring of 10^7
     positions) each get a specific 4xx, and the server still serves.
@@ -37,6 +38,7 @@ import urllib.request
 
 import numpy as np
 import rasterio
+from rasterio.features import rasterize
 from shapely.geometry import shape
 
 ROOT = os.path.dirname(os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)))))
@@ -111,6 +113,37 @@ def malformed(base, tif_bytes, t):
             f"10^7-vertex ring ({len(body) >> 20} MiB): {code} {p}")
     _, health = call(base + "/healthz")
     t.check(bool(health), "the server still serves /healthz")
+
+
+def strata_by_geometry(execute, ref, zones, t):
+    """Strata chosen by the demo zones' polygons hold the valid cells rasterio burns for them."""
+    with rasterio.open(TIF) as src:
+        valid = src.read(1) != src.nodata
+        shape_hw, transform = (src.height, src.width), src.transform
+    taken = np.zeros(shape_hw, dtype=bool)
+    strata = []
+    for feature in zones["features"]:
+        if feature["geometry"]["type"] not in ("Polygon", "MultiPolygon"):
+            continue
+        # reference: rasterio.features.rasterize with its default rule (a cell is burned when
+        # its centre lies inside), keeping only cells no earlier stratum took, so strata are
+        # disjoint as the service requires
+        burned = rasterize([(feature["geometry"], 1)], out_shape=shape_hw, transform=transform,
+                           fill=0, all_touched=False, dtype="uint8").astype(bool)
+        inside = burned & valid
+        if not inside.any() or (inside & taken).any():
+            continue
+        taken |= inside
+        strata.append((f"s-{feature['id']}", feature["geometry"], int(np.count_nonzero(inside))))
+        if len(strata) == 3:
+            break
+    t.check(len(strata) >= 2, f"{len(strata)} disjoint demo polygons to use as strata")
+    evidence = {"strata": [{"id": sid, "geometry": g, "total": {"min": 0, "max": 1}} for sid, g, _ in strata]}
+    body = {"inputs": {"raster": {"ref": ref}, "zones": zones, "evidence": evidence}}
+    _, raw = call(execute, json.dumps(body).encode())
+    got = {s["id"]: s["cells"] for s in json.loads(raw)["total"]["strata"]}
+    for sid, _, want in strata:
+        t.check(got.get(sid) == want, f"stratum {sid}: {got.get(sid)} cells, rasterio burns {want} valid cells")
 
 
 def main():
@@ -195,6 +228,8 @@ def main():
                 t.check(not bad, f"{len(bad)} cells differ from the JSON posterior")
                 valid = src.read(1).ravel() != src.nodata
                 t.check(bool(np.all(post[~valid] == src.nodata)), "nodata cells stay nodata")
+
+        strata_by_geometry(execute, info["ref"], zones, t)
 
         run = subprocess.run([args.bin, "eval", "--raster", TIF, "--zones", ZONES, "--total", str(TOTAL),
                               "--exceedance", "1,5,10", "--format", "geojson"], capture_output=True, check=False)
