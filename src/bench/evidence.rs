@@ -32,7 +32,7 @@ const REFERENCE_FLOOR: f64 = 1e-17;
 #[derive(Clone, Debug, Serialize)]
 pub struct EvidenceRow {
     pub form: String,
-    /// ours: `Normaliser::of` + plan + execute, seconds (the best of two runs).
+    /// ours: `Normaliser::of` + plan + execute, seconds (the best of `RUNS` runs).
     pub ours_s: f64,
     /// The normaliser's share (not separated under strata).
     pub normaliser_s: Option<f64>,
