@@ -22,6 +22,7 @@ mod plan;
 mod posterior;
 pub mod reference;
 mod rounding;
+mod scenarios;
 mod sets;
 mod strata;
 mod summary;
@@ -43,6 +44,7 @@ pub use plan::{plan, Plan, PlanNode};
 pub use posterior::{
     cell_posterior, plan_cells, posterior, CellPlan, CellPosterior, CellSelection,
 };
+pub use scenarios::{scenarios, Sampler, Scenario};
 pub use strata::{cell_posterior_strata, execute_strata, Strata, StrataEvaluation, StratumCells};
 pub use summary::{summarise, Interval, Summary, ZoneSummary};
 
