@@ -9,7 +9,7 @@ use serde_json::value::RawValue;
 
 use crate::api::decode::{Limits, LocalFiles};
 use crate::api::formats::Format;
-use crate::api::processes::{zone_counts, Context, Uncached};
+use crate::api::processes::{registry, zone_counts, Context, Process, Uncached};
 use crate::api::wire::{
     EvalRequest, EvidenceSpec, RasterHref, RasterInput, RasterSpec, SummariesSpec, ZoneOptions,
 };
@@ -32,8 +32,13 @@ impl CliError {
 /// files and flags (which build the same document).
 #[derive(Debug, Default, clap::Args)]
 pub struct EvalArgs {
-    /// Path of the request document, or - for standard input. Not with --raster.
+    /// Path of the request document (the process's inputs), or - for standard input. Not with
+    /// --raster.
     pub request: Option<String>,
+    /// The process to run on the request document: zone-counts, cell-posterior, total-check
+    /// or scenarios.
+    #[arg(long, default_value = "zone-counts")]
+    pub process: String,
     /// The probability raster: a GeoTIFF (.tif, .tiff) or a JSON raster (as `inputs.raster`).
     #[arg(long, requires_all = ["zones", "total"], conflicts_with = "request")]
     pub raster: Option<String>,
@@ -136,6 +141,9 @@ fn request_of(args: &EvalArgs) -> Result<EvalRequest, CliError> {
 /// Runs `zonetally eval`: builds or reads the request, decodes and computes it exactly as the
 /// `zone-counts` process does, and returns the results in the chosen format (JSON pretty).
 pub fn eval(args: &EvalArgs) -> Result<Vec<u8>, CliError> {
+    if args.process != zone_counts::ZoneCounts.id() {
+        return eval_other(args);
+    }
     let format = Format::from_name(&args.format)
         .filter(|f| zone_counts::FORMATS.contains(f))
         .ok_or_else(|| {
@@ -173,6 +181,74 @@ pub fn eval(args: &EvalArgs) -> Result<Vec<u8>, CliError> {
             .to_vec()
     };
     if format != Format::Csv {
+        bytes.push(b'\n');
+    }
+    Ok(bytes)
+}
+
+/// Runs a process other than `zone-counts` on a request document of its inputs, through the
+/// process's own decoding, and returns its output as the service would send it.
+fn eval_other(args: &EvalArgs) -> Result<Vec<u8>, CliError> {
+    let processes = registry();
+    let process = processes
+        .iter()
+        .find(|p| p.id() == args.process)
+        .ok_or_else(|| {
+            let ids: Vec<&str> = processes.iter().map(|p| p.id()).collect();
+            CliError::input(format!(
+                "--process `{}` is not offered: give one of {}",
+                args.process,
+                ids.join(", ")
+            ))
+        })?;
+    if args.raster.is_some() {
+        return Err(CliError::input(format!(
+            "--raster, --zones and --total build a zone-counts request: give `{}` a request document",
+            args.process
+        )));
+    }
+    let format = Format::from_name(&args.format)
+        .filter(|f| process.formats().contains(f))
+        .ok_or_else(|| {
+            let names: Vec<&str> = process.formats().iter().map(|f| f.name()).collect();
+            CliError::input(format!(
+                "--format `{}` is not offered by `{}`: give {}",
+                args.format,
+                args.process,
+                names.join(" or ")
+            ))
+        })?;
+    let path = args.request.as_deref().ok_or_else(|| {
+        CliError::input("give a request document (a file, or - for standard input)".into())
+    })?;
+    let text = read_text(path, "the request document")?;
+    let inputs = RawValue::from_string(text)
+        .map_err(|e| CliError::input(format!("`{path}` is not JSON: {e}")))?;
+    let body = serde_json::to_vec(&serde_json::json!({ "inputs": inputs }))
+        .map_err(|e| CliError::input(format!("`{path}` cannot be read: {e}")))?;
+    let ctx = Context {
+        limits: Limits::default(),
+        rasters: &LocalFiles,
+        normalisers: &Uncached,
+    };
+    let refused = |e: crate::api::problem::ApiError| {
+        let problem = e.problem();
+        let code = if e.status().is_server_error() { 1 } else { 2 };
+        let pointer = problem.pointer.as_deref().unwrap_or("/");
+        // The document read is the `inputs` of an execute body: name pointers within it.
+        let pointer = pointer.strip_prefix("/inputs").unwrap_or(pointer);
+        let pointer = if pointer.is_empty() { "/" } else { pointer };
+        CliError {
+            message: format!("{pointer}: {}", problem.detail),
+            code,
+        }
+    };
+    let (_, prepared) = process
+        .prepare(&body, Some(format.media_type()), &ctx)
+        .map_err(refused)?;
+    let output = prepared.run(&ctx, &Control::new()).map_err(refused)?;
+    let mut bytes = output.body.to_vec();
+    if output.format != Format::GeoTiff && output.format != Format::Csv {
         bytes.push(b'\n');
     }
     Ok(bytes)

@@ -68,7 +68,10 @@ async fn processes_are_listed_and_described_with_schemas() {
         .iter()
         .map(|p| p["id"].as_str().unwrap())
         .collect();
-    assert_eq!(ids, ["zone-counts", "cell-posterior", "total-check"]);
+    assert_eq!(
+        ids,
+        ["zone-counts", "cell-posterior", "total-check", "scenarios"]
+    );
     let d = get(&app, "/processes/zone-counts").await.json();
     assert_eq!(
         d["jobControlOptions"],
@@ -89,10 +92,12 @@ async fn processes_are_listed_and_described_with_schemas() {
     let spec: Value = serde_json::from_str(zonetally::api::openapi_json()).unwrap();
     let mut refs = Vec::new();
     collect_refs(&d, &mut refs);
-    collect_refs(
-        &get(&app, "/processes/cell-posterior").await.json(),
-        &mut refs,
-    );
+    for other in ["cell-posterior", "scenarios"] {
+        collect_refs(
+            &get(&app, &format!("/processes/{other}")).await.json(),
+            &mut refs,
+        );
+    }
     assert!(!refs.is_empty());
     for r in refs {
         let name = r

@@ -69,6 +69,13 @@ pub struct Config {
         default_value_t = 10_000_000
     )]
     pub max_exceedance_values: u64,
+    /// Most scenarios one `scenarios` request may draw.
+    #[arg(long, env = "ZONETALLY_MAX_SCENARIOS", default_value_t = 10_000)]
+    pub max_scenarios: u64,
+    /// Largest estimated size of one `scenarios` output (its samples, with their event cells
+    /// when asked); larger requests get 413 before anything is drawn.
+    #[arg(long, env = "ZONETALLY_MAX_SCENARIO_BYTES", default_value_t = 256 << 20)]
+    pub max_scenario_bytes: u64,
     /// Bytes of rasters kept for reuse and for `{"ref": ...}`, taken out of the memory budget.
     /// Default: a quarter of the budget.
     #[arg(long, env = "ZONETALLY_RASTER_CACHE_BYTES")]
@@ -158,6 +165,8 @@ impl Default for Config {
             max_jobs: 10_000,
             max_job_bytes: None,
             max_exceedance_values: 10_000_000,
+            max_scenarios: 10_000,
+            max_scenario_bytes: 256 << 20,
             memory_budget: None,
             api_keys: None,
             public_metrics: false,
@@ -198,6 +207,8 @@ impl Config {
             max_cost: self.max_cost,
             max_vertices: self.max_vertices,
             max_exceedance_values: self.max_exceedance_values,
+            max_scenarios: self.max_scenarios,
+            max_scenario_bytes: self.max_scenario_bytes,
         }
     }
     /// How the memory budget is shared out; an error names the flags that do not fit.

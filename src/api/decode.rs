@@ -43,6 +43,10 @@ pub struct Limits {
     pub max_vertices: u64,
     /// Most exceedance probabilities of a request: zones x thresholds.
     pub max_exceedance_values: u64,
+    /// Most scenarios one `scenarios` request may draw.
+    pub max_scenarios: u64,
+    /// Largest estimated size of a `scenarios` output, in bytes.
+    pub max_scenario_bytes: u64,
 }
 
 impl Limits {
@@ -63,6 +67,8 @@ impl Default for Limits {
             max_cost: f64::INFINITY,
             max_vertices: 100_000_000,
             max_exceedance_values: u64::MAX,
+            max_scenarios: u64::MAX,
+            max_scenario_bytes: u64::MAX,
         }
     }
 }

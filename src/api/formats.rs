@@ -47,6 +47,16 @@ impl Format {
         }
     }
 
+    /// The name `zonetally eval --format` gives this format.
+    pub fn name(self) -> &'static str {
+        match self {
+            Format::Json => "json",
+            Format::GeoJson => "geojson",
+            Format::Csv => "csv",
+            Format::GeoTiff => "geotiff",
+        }
+    }
+
     /// The name used by `zonetally eval --format`.
     pub fn from_name(name: &str) -> Option<Format> {
         match name {

@@ -58,7 +58,9 @@ use state::AppState;
         wire::EvalRequest,
         wire::ResultsDocument,
         wire::PosteriorDocument,
-        wire::PosteriorInputs
+        wire::PosteriorInputs,
+        wire::ScenarioInputs,
+        wire::ScenariosDocument
     ))
 )]
 struct ApiDoc;

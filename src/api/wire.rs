@@ -666,3 +666,131 @@ pub struct TotalCheckInputs {
     #[serde(default)]
     pub summaries: TotalSummaries,
 }
+
+/// The inputs of `scenarios`: those of `zone-counts` (without `summaries`), plus how many
+/// scenarios to draw and what to summarise over them.
+#[derive(Clone, Debug, Deserialize, Serialize, ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct ScenarioInputs {
+    pub raster: RasterInput,
+    /// A list of zones (`ZoneSpec`), a GeoJSON Feature or FeatureCollection, or `{"labels": raster}`.
+    #[schema(value_type = ZonesDoc)]
+    pub zones: Box<RawValue>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub zone_options: Option<ZoneOptions>,
+    pub evidence: EvidenceSpec,
+    /// How many scenarios to draw: at least 1, at most the service's `--max-scenarios`.
+    pub count: u64,
+    /// Key of the random streams (default 0): the same seed, inputs and version give the same
+    /// scenarios, whatever the number of threads.
+    #[serde(default)]
+    pub seed: u64,
+    /// Also list each scenario's event cells (default false).
+    #[serde(default)]
+    pub cells: bool,
+    /// Thresholds k: for each, the summary gives how many zones hold at least k events.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub at_least: Vec<u64>,
+    /// Ids of the zones whose pairwise correlations the summary gives (at most 50); the first
+    /// 50 zones in request order when absent, none when empty.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub correlation: Option<Vec<String>>,
+}
+
+/// One scenario as sent (described for the schema; encoded straight from the draws).
+#[derive(Serialize, ToSchema)]
+pub struct ScenarioOut {
+    /// The event count of every zone, keyed by zone id, in request order.
+    pub zones: std::collections::BTreeMap<String, u64>,
+    /// Row-major indices of the cells holding an event, ascending (when `cells` was asked).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub cells: Option<Vec<u32>>,
+}
+
+/// A zone's count over the scenarios.
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq, ToSchema)]
+pub struct ScenarioZoneOut {
+    pub id: String,
+    /// Mean count over the scenarios.
+    pub mean: f64,
+    /// Standard deviation over the scenarios (divisor count - 1); null for one scenario.
+    pub sd: Option<f64>,
+}
+
+/// How many zones hold at least `k` events, over the scenarios.
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq, ToSchema)]
+pub struct AtLeastOut {
+    pub k: u64,
+    /// `scenarios[i]`: the number of scenarios in which exactly i zones hold at least k events
+    /// (up to the largest i seen).
+    pub scenarios: Vec<u64>,
+    /// Mean number of zones holding at least k events.
+    pub mean: f64,
+}
+
+/// Pairwise correlations of zone counts over the scenarios.
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq, ToSchema)]
+pub struct CorrelationOut {
+    pub zones: Vec<String>,
+    /// `matrix[i][j]`: the sample correlation of the counts of `zones[i]` and `zones[j]`; null
+    /// where either count does not vary over the scenarios.
+    pub matrix: Vec<Vec<Option<f64>>>,
+}
+
+/// What the scenarios show together.
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq, ToSchema)]
+pub struct ScenarioSummaryOut {
+    pub count: u64,
+    pub seed: u64,
+    /// Every zone, in request order.
+    pub zones: Vec<ScenarioZoneOut>,
+    pub at_least: Vec<AtLeastOut>,
+    pub correlation: CorrelationOut,
+}
+
+/// The `scenarios` output.
+#[derive(Serialize, ToSchema)]
+pub struct ScenariosDocument {
+    #[schema(value_type = Vec<ScenarioOut>)]
+    pub samples: ScenarioList,
+    pub summary: ScenarioSummaryOut,
+    /// Bound on the total variation distance between the law each scenario is drawn from and
+    /// the exact conditional law of the field given the evidence.
+    pub error_bound: f64,
+    pub total: TotalResult,
+}
+
+/// The draws with their zones' ids, encoded as `ScenarioOut`s without copying an id per draw.
+pub struct ScenarioList {
+    pub ids: Vec<String>,
+    pub draws: Vec<crate::engine::Scenario>,
+}
+
+impl Serialize for ScenarioList {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        use serde::ser::{SerializeSeq, SerializeStruct};
+        struct Zones<'a>(&'a [String], &'a [u64]);
+        impl Serialize for Zones<'_> {
+            fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+                s.collect_map(self.0.iter().zip(self.1))
+            }
+        }
+        struct One<'a>(&'a [String], &'a crate::engine::Scenario);
+        impl Serialize for One<'_> {
+            fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+                let fields = 1 + usize::from(self.1.cells.is_some());
+                let mut st = s.serialize_struct("ScenarioOut", fields)?;
+                st.serialize_field("zones", &Zones(self.0, &self.1.zones))?;
+                if let Some(cells) = &self.1.cells {
+                    st.serialize_field("cells", cells)?;
+                }
+                st.end()
+            }
+        }
+        let mut seq = s.serialize_seq(Some(self.draws.len()))?;
+        for d in &self.draws {
+            seq.serialize_element(&One(&self.ids, d))?;
+        }
+        seq.end()
+    }
+}

@@ -31,6 +31,7 @@
 pub mod baseline;
 pub mod evidence;
 pub mod gis;
+pub mod scenarios;
 pub mod workload;
 
 use std::io::Write;
@@ -131,6 +132,7 @@ pub struct Report {
     pub rows: Vec<Row>,
     pub evidence: Vec<evidence::EvidenceRow>,
     pub gis: Vec<gis::GisRow>,
+    pub scenarios: Option<scenarios::ScenarioRow>,
     pub targets: Vec<Target>,
 }
 
@@ -140,12 +142,14 @@ pub struct Selection {
     pub engine: Vec<&'static Workload>,
     /// The evidence rows (`evidence::NAME`).
     pub evidence: bool,
+    /// The scenario rows (`scenarios::NAME`).
+    pub scenarios: bool,
     pub gis: Vec<&'static str>,
 }
 
 impl Selection {
     pub fn len(&self) -> usize {
-        self.engine.len() + self.evidence as usize + self.gis.len()
+        self.engine.len() + self.evidence as usize + self.scenarios as usize + self.gis.len()
     }
     pub fn is_empty(&self) -> bool {
         self.len() == 0
@@ -161,7 +165,8 @@ pub fn list() -> String {
         .iter()
         .map(|(n, a)| format!("{n:<16} {a}\n"));
     let evidence = std::iter::once(format!("{:<16} {}\n", evidence::NAME, evidence::ABOUT));
-    engine.chain(evidence).chain(geo).collect()
+    let draws = std::iter::once(format!("{:<16} {}\n", scenarios::NAME, scenarios::ABOUT));
+    engine.chain(evidence).chain(draws).chain(geo).collect()
 }
 
 /// Resolves `--workload`: one by name, or all of them.
@@ -170,6 +175,7 @@ pub fn select(name: Option<&str>) -> Result<Selection, String> {
         return Ok(Selection {
             engine: WORKLOADS.iter().collect(),
             evidence: true,
+            scenarios: true,
             gis: gis::GIS_WORKLOADS.iter().map(|(n, _)| *n).collect(),
         });
     };
@@ -185,6 +191,12 @@ pub fn select(name: Option<&str>) -> Result<Selection, String> {
             ..Selection::default()
         });
     }
+    if n.eq_ignore_ascii_case(scenarios::NAME) {
+        return Ok(Selection {
+            scenarios: true,
+            ..Selection::default()
+        });
+    }
     if let Some(g) = gis::find(n) {
         return Ok(Selection {
             gis: vec![g],
@@ -195,6 +207,7 @@ pub fn select(name: Option<&str>) -> Result<Selection, String> {
         .iter()
         .map(|w| w.name)
         .chain(std::iter::once(evidence::NAME))
+        .chain(std::iter::once(scenarios::NAME))
         .chain(gis::GIS_WORKLOADS.iter().map(|(n, _)| *n))
         .collect();
     Err(format!(
@@ -214,14 +227,21 @@ pub fn run(selection: &Selection, log: &mut dyn Write) -> Result<Report, String>
     } else {
         Vec::new()
     };
+    let drawn = if selection.scenarios {
+        Some(scenarios::run(log)?)
+    } else {
+        None
+    };
     let gis = gis::run(&selection.gis, log)?;
     let mut targets = targets(&rows);
     targets.extend(evidence_targets(&evidence));
+    targets.extend(scenario_targets(drawn.as_ref()));
     targets.extend(gis_targets(&gis));
     Ok(Report {
         rows,
         evidence,
         gis,
+        scenarios: drawn,
         targets,
     })
 }
@@ -274,6 +294,64 @@ fn render_evidence(rows: &[evidence::EvidenceRow]) -> String {
             ));
         }
     }
+    s
+}
+
+/// The target of the scenario rows (issue 9): 1,000 scenarios with zone counts within 20x one
+/// `zone-counts` evaluation of the same request.
+pub fn scenario_targets(row: Option<&scenarios::ScenarioRow>) -> Vec<Target> {
+    let Some(r) = row else {
+        return Vec::new();
+    };
+    vec![target(
+        &format!("{}: 1,000 scenarios / zone-counts", scenarios::NAME),
+        "<= 20",
+        Some(r.counts_ratio),
+        |x| x <= 20.0,
+    )]
+}
+
+/// The scenario rows as lines of text.
+fn render_scenarios(r: &scenarios::ScenarioRow) -> String {
+    let mut s = format!(
+        "
+scenario rows ({})
+",
+        scenarios::ABOUT
+    );
+    s.push_str(&format!(
+        "  zone-counts once: {} (planned cost {:.3e}); max bound {}\n",
+        time(r.zone_counts_s),
+        r.zone_counts_cost,
+        diff(r.zone_counts_bound)
+    ));
+    s.push_str(&format!(
+        "  1,000 scenarios, zone counts: {} (tree {}; planned cost {:.3e}), {} of zone-counts; bound {}\n",
+        time(r.counts_s),
+        time(r.tree_s),
+        r.counts_cost,
+        ratio(r.counts_ratio),
+        diff(r.scenario_bound)
+    ));
+    s.push_str(&format!(
+        "  1,000 scenarios with event cells: {} (planned cost {:.3e}); {:.0} JSON bytes and {:.0} bytes in memory per scenario\n",
+        time(r.cells_s),
+        r.cells_cost,
+        r.json_bytes_per_scenario,
+        r.memory_bytes_per_scenario
+    ));
+    s.push_str(&format!(
+        "  simulate and keep: {} fields in {}, {} kept (acceptance {:.2e}); {} per kept map vs ours {} per scenario{}\n",
+        r.baseline_fields,
+        time(r.baseline_s),
+        r.baseline_kept,
+        r.acceptance,
+        opt(r.baseline_per_kept_s, time),
+        time(r.ours_per_scenario_s),
+        r.baseline_per_kept_s
+            .map(|b| format!(" ({:.0}x)", b / r.ours_per_scenario_s))
+            .unwrap_or_default()
+    ));
     s
 }
 
@@ -919,6 +997,9 @@ pub fn render(report: &Report) -> String {
     if !report.evidence.is_empty() {
         s.push_str(&render_evidence(&report.evidence));
     }
+    if let Some(r) = &report.scenarios {
+        s.push_str(&render_scenarios(r));
+    }
     if !report.gis.is_empty() {
         s.push_str(&render_gis(&report.gis));
     }
@@ -979,9 +1060,10 @@ mod tests {
         );
         assert_eq!(
             select(None).unwrap().len(),
-            WORKLOADS.len() + 1 + gis::GIS_WORKLOADS.len()
+            WORKLOADS.len() + 2 + gis::GIS_WORKLOADS.len()
         );
         assert!(select(Some("e250k-EVIDENCE")).unwrap().evidence);
+        assert!(select(Some("s250k-scenarios")).unwrap().scenarios);
         assert_eq!(select(Some("g-read-5000")).unwrap().gis, ["G-read-5000"]);
         assert_eq!(
             select(Some("w10k-PARTITION")).unwrap().engine[0].name,

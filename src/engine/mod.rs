@@ -44,7 +44,7 @@ pub use plan::{plan, Plan, PlanNode};
 pub use posterior::{
     cell_posterior, plan_cells, posterior, CellPlan, CellPosterior, CellSelection,
 };
-pub use scenarios::{scenarios, Sampler, Scenario};
+pub use scenarios::{scenario_cost, scenarios, Sampler, Scenario};
 pub use strata::{cell_posterior_strata, execute_strata, Strata, StrataEvaluation, StratumCells};
 pub use summary::{summarise, Interval, Summary, ZoneSummary};
 

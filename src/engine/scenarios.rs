@@ -25,10 +25,12 @@ use rayon::prelude::*;
 
 use super::control::Control;
 use super::error::EngineError;
+use super::evidence::Evidence;
 use super::law::{convolve, Law};
 use super::model::{Raster, Zone};
 use super::normaliser::{Normaliser, Regime};
 use super::rounding::{gamma, ROUNDINGS_PER_CELL};
+use super::strata::Strata;
 use super::tilt::{is_free, tilted};
 
 /// Cells of a leaf block, drawn one by one: its prefix laws cost 16 x count per draw, less
@@ -63,8 +65,9 @@ struct Node {
     kind: Kind,
 }
 
-/// Everything the draws share: the tree, the atoms' zones, the law of the free total.
-pub struct Sampler {
+/// Everything the draws of one part of the raster share: the tree, the atoms' zones, the law
+/// of the part's free total.
+struct Tree {
     /// Free cells in tree order, and their tilted (q, 1 - q).
     order: Vec<u32>,
     pairs: Vec<(f64, f64)>,
@@ -77,7 +80,34 @@ pub struct Sampler {
     /// (free total, cumulative probability) of the free total each draw starts from.
     totals: Vec<(u64, f64)>,
     /// Bound on the total variation distance between the law one draw follows and the exact
-    /// conditional law of the field (first order in the unit roundoff).
+    /// law of the part's field (first order in the unit roundoff).
+    error_bound: f64,
+}
+
+/// Where the free total of a part comes from.
+enum Start<'a> {
+    /// The evidence, through its normaliser.
+    Evidence(&'a Normaliser),
+    /// No evidence: the prior law of the part's total, which the tree's root holds (tilt 1).
+    Prior,
+}
+
+/// One part of the raster drawn independently of the others: the whole raster, a stratum, or
+/// the cells in no stratum. Cells and zones are numbered within the part.
+struct Piece {
+    tree: Tree,
+    /// Raster index of each of the part's cells (`None`: the part is the raster).
+    cells: Option<Vec<u32>>,
+    /// The request's index of each of the part's zones (`None`: the same zones).
+    zones: Option<Vec<u32>>,
+}
+
+/// Everything the draws share: one tree per independent part of the raster.
+pub struct Sampler {
+    pieces: Vec<Piece>,
+    zones: usize,
+    /// Bound on the total variation distance between the law one draw follows and the exact
+    /// conditional law of the field (first order in the unit roundoff): the sum of the parts'.
     pub error_bound: f64,
 }
 
@@ -92,10 +122,136 @@ impl Sampler {
         normaliser: &Normaliser,
         control: &Control,
     ) -> Result<Sampler, EngineError> {
+        let tree = Tree::new(raster, zones, Start::Evidence(normaliser), control)?;
+        Ok(Sampler {
+            error_bound: tree.error_bound,
+            pieces: vec![Piece {
+                tree,
+                cells: None,
+                zones: None,
+            }],
+            zones: zones.len(),
+        })
+    }
+
+    /// Builds one tree per stratum, under that stratum's evidence, and one for the cells in no
+    /// stratum, under their prior law: given the strata's evidence these parts are independent
+    /// (see `strata`), so a draw is one draw of each.
+    ///
+    /// Occurs as `ImpossibleEvidence` when a stratum's evidence has no prior mass, and as
+    /// `Cancelled` when `control` asks.
+    pub fn strata(
+        raster: &Raster,
+        zones: &[Zone],
+        strata: &Strata,
+        control: &Control,
+    ) -> Result<Sampler, EngineError> {
         let values = raster.values();
-        let t = match normaliser.regime {
-            Regime::Tilted(tilt) => tilt.t,
-            Regime::AllEmpty | Regime::AllFull => 1.0,
+        let mut in_stratum = vec![false; values.len()];
+        let mut parts: Vec<(Raster, Vec<u32>, Option<&Evidence>)> = Vec::new();
+        for (stratum, evidence) in strata.parts() {
+            let cells: Vec<u32> = stratum.cells().iter().map(|c| c.0).collect();
+            for &c in &cells {
+                in_stratum[c as usize] = true;
+            }
+            parts.push((stratum.raster().clone(), cells, Some(evidence)));
+        }
+        let rest: Vec<u32> = (0..values.len() as u32)
+            .filter(|&i| !in_stratum[i as usize] && !values[i as usize].is_nan())
+            .collect();
+        drop(in_stratum);
+        if !rest.is_empty() {
+            let p = rest.iter().map(|&i| values[i as usize]).collect();
+            parts.push((
+                Raster::from_probabilities(rest.len() as u32, 1, p)?,
+                rest,
+                None,
+            ));
+        }
+        let mut local = vec![u32::MAX; values.len()];
+        let mut pieces = Vec::with_capacity(parts.len());
+        for (sub, cells, evidence) in parts {
+            for (i, &c) in cells.iter().enumerate() {
+                local[c as usize] = i as u32;
+            }
+            let mut own = Vec::new();
+            let mut index = Vec::new();
+            for (z, zone) in zones.iter().enumerate() {
+                let inside: Vec<u32> = zone
+                    .cells()
+                    .iter()
+                    .map(|c| local[c.index()])
+                    .filter(|&l| l != u32::MAX)
+                    .collect();
+                if !inside.is_empty() {
+                    own.push(Zone::new(zone.id(), inside, &sub)?);
+                    index.push(z as u32);
+                }
+            }
+            for &c in &cells {
+                local[c as usize] = u32::MAX;
+            }
+            let tree = match evidence {
+                Some(evidence) => {
+                    let normaliser = Normaliser::of(&sub, evidence, control)?;
+                    Tree::new(&sub, &own, Start::Evidence(&normaliser), control)?
+                }
+                None => Tree::new(&sub, &own, Start::Prior, control)?,
+            };
+            pieces.push(Piece {
+                tree,
+                cells: Some(cells),
+                zones: Some(index),
+            });
+        }
+        Ok(Sampler {
+            error_bound: pieces.iter().map(|p| p.tree.error_bound).sum(),
+            pieces,
+            zones: zones.len(),
+        })
+    }
+
+    /// Draw number `index` of the stream keyed by `seed`.
+    pub fn draw(&self, seed: u64, index: u64, cells: bool) -> Scenario {
+        let mut rng = ChaCha8Rng::seed_from_u64(seed);
+        rng.set_stream(index);
+        let mut zones = vec![0u64; self.zones];
+        let mut all = cells.then(Vec::new);
+        for piece in &self.pieces {
+            let (counts, drawn) = piece.tree.draw(&mut rng, cells);
+            for (z, c) in counts.into_iter().enumerate() {
+                let at = piece.zones.as_ref().map_or(z, |index| index[z] as usize);
+                zones[at] += c;
+            }
+            if let (Some(all), Some(drawn)) = (&mut all, drawn) {
+                match &piece.cells {
+                    Some(map) => all.extend(drawn.iter().map(|&c| map[c as usize])),
+                    None => all.extend(drawn),
+                }
+            }
+        }
+        let cells = all.map(|mut c| {
+            c.sort_unstable();
+            c
+        });
+        Scenario { zones, cells }
+    }
+}
+
+impl Tree {
+    fn new(
+        raster: &Raster,
+        zones: &[Zone],
+        start: Start,
+        control: &Control,
+    ) -> Result<Tree, EngineError> {
+        let values = raster.values();
+        let t = match start {
+            Start::Evidence(Normaliser {
+                regime: Regime::Tilted(tilt),
+                ..
+            }) => tilt.t,
+            _ => 1.0,
         };
         // Each cell's zones, then atoms numbered in the order of their first cell.
         let mut member: Vec<Vec<u32>> = vec![Vec::new(); values.len()];
@@ -158,18 +314,27 @@ impl Sampler {
         let free = order.len() as u64;
         let certain = certain_cells.len() as u64;
         // The law of the free total each draw starts from.
-        let (weights, mut bound) = match (&normaliser.regime, &normaliser.check.posterior) {
-            (Regime::AllEmpty, _) => (vec![(0, 1.0)], 0.0),
-            (Regime::AllFull, _) => (vec![(free, 1.0)], 0.0),
-            (_, None) => (vec![(normaliser.target, 1.0)], 0.0),
-            (_, Some(post)) => (
-                post.pmf
-                    .iter()
-                    .enumerate()
-                    .map(|(i, &w)| ((post.offset + i as u64).saturating_sub(certain), w))
-                    .collect(),
-                post.error_bound,
-            ),
+        let (weights, mut bound) = match start {
+            Start::Prior => match &root {
+                None => (vec![(0, 1.0)], 0.0),
+                Some(r) => (
+                    (r.law.lo..=r.law.hi()).map(|k| (k, r.law.at(k))).collect(),
+                    0.0,
+                ),
+            },
+            Start::Evidence(n) => match (&n.regime, &n.check.posterior) {
+                (Regime::AllEmpty, _) => (vec![(0, 1.0)], 0.0),
+                (Regime::AllFull, _) => (vec![(free, 1.0)], 0.0),
+                (_, None) => (vec![(n.target, 1.0)], 0.0),
+                (_, Some(post)) => (
+                    post.pmf
+                        .iter()
+                        .enumerate()
+                        .map(|(i, &w)| ((post.offset + i as u64).saturating_sub(certain), w))
+                        .collect(),
+                    post.error_bound,
+                ),
+            },
         };
         // Totals the tree cannot reach (trimmed away) are left out; their mass enters the bound.
         let reachable = |k: u64| match &root {
@@ -206,7 +371,7 @@ impl Sampler {
         if let Some(r) = &root {
             bound += r.rounding_bound();
         }
-        Ok(Sampler {
+        Ok(Tree {
             order,
             pairs,
             atom_zones,
@@ -218,15 +383,14 @@ impl Sampler {
         })
     }
 
-    /// Draw number `index` of the stream keyed by `seed`.
-    pub fn draw(&self, seed: u64, index: u64, cells: bool) -> Scenario {
-        let mut rng = ChaCha8Rng::seed_from_u64(seed);
-        rng.set_stream(index);
+    /// One draw of the part's field from `rng`: its zones' counts and, when asked, its event
+    /// cells (unordered).
+    fn draw(&self, rng: &mut ChaCha8Rng, cells: bool) -> (Vec<u64>, Option<Vec<u32>>) {
         let u: f64 = rng.gen();
         let at = self.totals.partition_point(|t| t.1 <= u);
         let k = self.totals[at.min(self.totals.len() - 1)].0;
         let mut walk = Walk {
-            sampler: self,
+            tree: self,
             rng,
             atoms: vec![0u64; self.atom_zones.len()],
             cells: cells.then(|| self.certain_cells.clone()),
@@ -243,12 +407,35 @@ impl Sampler {
                 }
             }
         }
-        let cells = walk.cells.map(|mut c| {
-            c.sort_unstable();
-            c
-        });
-        Scenario { zones, cells }
+        (zones, walk.cells)
     }
+}
+
+/// Work of one split, in the planner's units (multiply-adds at the rate `zone-counts` runs
+/// them): its window of j values, the random draw and the walk. Set so that the planned cost
+/// of S250k-scenarios follows its measured time as the planned cost of `zone-counts` follows
+/// its own (an estimate, not a bound).
+const SPLIT_WORK: f64 = 24.0;
+/// Work per cell of a leaf block holding events, in the same units and set the same way: the
+/// prefix laws, the draws and the sort of the event cells.
+const CELL_WORK: f64 = 24.0;
+
+/// The planner's estimate of multiply-adds for building the tree over `free` cells and drawing
+/// `count` scenarios of at most `events` events each (`cells`: with their event cells). Building
+/// folds each cell into its leaf law and convolves up about log2(free) levels; a draw splits at
+/// most every node above the leaves, and with event cells also runs the prefix laws of the
+/// leaves holding events.
+pub fn scenario_cost(free: u64, count: u64, events: u64, cells: bool) -> f64 {
+    let n = free as f64;
+    let leaves = (free.div_ceil(LEAF_CELLS as u64)) as f64;
+    let levels = n.max(2.0).log2();
+    let build = n * LEAF_CELLS as f64 + leaves * levels * SPLIT_WORK * SPLIT_WORK;
+    let mut draw = 2.0 * leaves * SPLIT_WORK;
+    if cells {
+        let e = events.min(free) as f64;
+        draw += LEAF_CELLS as f64 * CELL_WORK * (e + leaves.min(e));
+    }
+    build + count as f64 * draw
 }
 
 /// Draws `count` scenarios (indices 0 .. count) on the current rayon pool.
@@ -368,8 +555,8 @@ impl Node {
 
 /// One draw in progress.
 struct Walk<'a> {
-    sampler: &'a Sampler,
-    rng: ChaCha8Rng,
+    tree: &'a Tree,
+    rng: &'a mut ChaCha8Rng,
     atoms: Vec<u64>,
     cells: Option<Vec<u32>>,
     scratch: Vec<f64>,
@@ -393,7 +580,7 @@ impl Walk<'_> {
         // on down (each split then gives every child its whole size) to credit each atom.
         if c >= size && in_atom {
             if let Some(cells) = &mut self.cells {
-                cells.extend_from_slice(&self.sampler.order[node.start..node.end]);
+                cells.extend_from_slice(&self.tree.order[node.start..node.end]);
             }
             return;
         }
@@ -438,7 +625,7 @@ impl Walk<'_> {
         let Some(cells) = &mut self.cells else {
             return;
         };
-        let pairs = &self.sampler.pairs[node.start..node.end];
+        let pairs = &self.tree.pairs[node.start..node.end];
         let n = pairs.len();
         let w = c as usize + 1;
         let prefix = &mut self.scratch;
@@ -464,7 +651,7 @@ impl Walk<'_> {
             let zero = r * prev[rem];
             let event = rem > i || self.rng.gen::<f64>() * (one + zero) < one;
             if event {
-                cells.push(self.sampler.order[node.start + i]);
+                cells.push(self.tree.order[node.start + i]);
                 rem -= 1;
             }
         }
@@ -474,16 +661,16 @@ impl Walk<'_> {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::engine::Evidence;
+    use crate::engine::{Evidence, StratumCells};
     use statrs::distribution::{ChiSquared, ContinuousCDF};
 
-    /// Exact conditional probabilities of every 0/1 field over `p` whose total satisfies
-    /// `allowed`, by enumeration: the fields' prior probabilities, renormalised.
+    /// Exact conditional probabilities of every 0/1 field over `p` (bit i = cell i) that
+    /// `allowed` keeps, by enumeration: the fields' prior probabilities, renormalised.
     fn enumerate(p: &[f64], allowed: impl Fn(u32) -> bool) -> Vec<f64> {
         let n = p.len();
         let mut probs: Vec<f64> = (0..1u32 << n)
             .map(|x| {
-                if !allowed(x.count_ones()) {
+                if !allowed(x) {
                     return 0.0;
                 }
                 (0..n)
@@ -494,6 +681,41 @@ mod tests {
         let z: f64 = probs.iter().sum();
         probs.iter_mut().for_each(|v| *v /= z);
         probs
+    }
+
+    /// The raster's probabilities, nodata as 0 (never an event).
+    fn probabilities(raster: &Raster) -> Vec<f64> {
+        raster
+            .values()
+            .iter()
+            .map(|&v| if v.is_nan() { 0.0 } else { v })
+            .collect()
+    }
+
+    /// Checks every draw's field against `allowed` and its zone counts against its cells, then
+    /// the fields' frequencies against `exact` (chi-square, not rejected at 1e-3).
+    fn check_fields(
+        draws: &[Scenario],
+        zones: &[Zone],
+        exact: &[f64],
+        allowed: impl Fn(u32) -> bool,
+    ) {
+        let mut observed = vec![0u64; exact.len()];
+        for d in draws {
+            let x = bits(d);
+            assert!(allowed(x), "a drawn field breaks the evidence");
+            for (zone, &count) in zones.iter().zip(&d.zones) {
+                assert_eq!(
+                    count,
+                    zone_count(x as usize, zone) as u64,
+                    "zone count and cells disagree"
+                );
+            }
+            observed[x as usize] += 1;
+        }
+        let expected: Vec<f64> = exact.iter().map(|e| e * draws.len() as f64).collect();
+        let pv = chi_square_p(&observed, &expected);
+        assert!(pv > 1e-3, "chi-square p-value {pv}");
     }
 
     /// Pearson's statistic over the fields, pooling those expected fewer than 5 times into
@@ -554,11 +776,7 @@ mod tests {
     #[test]
     fn whole_fields_follow_their_exact_conditional_law() {
         let (raster, zones) = small();
-        let p: Vec<f64> = raster
-            .values()
-            .iter()
-            .map(|&v| if v.is_nan() { 0.0 } else { v })
-            .collect();
+        let p = probabilities(&raster);
         let control = Control::new();
         for (evidence, allowed) in [
             (
@@ -574,39 +792,50 @@ mod tests {
             let sampler = Sampler::new(&raster, &zones, &n, &control).unwrap();
             assert!(sampler.error_bound < 1e-12, "{}", sampler.error_bound);
             let draws = scenarios(&sampler, 20_000, 7, true, &control).unwrap();
+            let field = |x: u32| allowed(x.count_ones());
             // reference: brute-force enumeration of all 2^12 fields (closed form)
-            let exact = enumerate(&p, &allowed);
-            let mut observed = vec![0u64; exact.len()];
-            for d in &draws {
-                let x = bits(d);
-                assert!(allowed(x.count_ones()), "a drawn total breaks the evidence");
-                for (zone, &count) in zones.iter().zip(&d.zones) {
-                    let want = zone.cells().iter().filter(|c| x >> c.0 & 1 == 1).count();
-                    assert_eq!(count, want as u64, "zone count and cells disagree");
-                }
-                observed[x as usize] += 1;
-            }
-            let expected: Vec<f64> = exact.iter().map(|e| e * 20_000.0).collect();
-            let pv = chi_square_p(&observed, &expected);
-            assert!(pv > 1e-3, "chi-square p-value {pv}");
+            let exact = enumerate(&p, field);
+            check_fields(&draws, &zones, &exact, field);
         }
+    }
+
+    #[test]
+    fn fields_under_strata_follow_their_exact_conditional_law() {
+        let (raster, zones) = small();
+        let p = probabilities(&raster);
+        let control = Control::new();
+        // Stratum `a` holds exactly 2 events, `b` between 1 and 2; cells 5, 8 and 11 are in
+        // no stratum (one certain, one impossible, one free).
+        let a = StratumCells::new("a", vec![0, 1, 2, 4], &raster).unwrap();
+        let b = StratumCells::new("b", vec![6, 7, 9, 10], &raster).unwrap();
+        let ea = Evidence::exact_total(2, a.raster()).unwrap();
+        let eb = Evidence::range(1, 2, b.raster()).unwrap();
+        let strata = Strata::new(vec![(a, ea), (b, eb)]).unwrap();
+        let sampler = Sampler::strata(&raster, &zones, &strata, &control).unwrap();
+        assert!(sampler.error_bound < 1e-12, "{}", sampler.error_bound);
+        let draws = scenarios(&sampler, 20_000, 5, true, &control).unwrap();
+        let field = |x: u32| {
+            let in_a = (x & 0b1_0111).count_ones();
+            let in_b = (x & 0b110_1100_0000).count_ones();
+            in_a == 2 && (1..=2).contains(&in_b)
+        };
+        // reference: brute-force enumeration of all 2^12 fields (closed form), kept when each
+        // stratum's total satisfies its evidence
+        let exact = enumerate(&p, field);
+        check_fields(&draws, &zones, &exact, field);
     }
 
     #[test]
     fn covariance_of_overlapping_zones_matches_enumeration() {
         let (raster, zones) = small();
-        let p: Vec<f64> = raster
-            .values()
-            .iter()
-            .map(|&v| if v.is_nan() { 0.0 } else { v })
-            .collect();
+        let p = probabilities(&raster);
         let control = Control::new();
         let n = Normaliser::new(&raster, 5, &control).unwrap();
         let sampler = Sampler::new(&raster, &zones, &n, &control).unwrap();
         let k = 20_000usize;
         let draws = scenarios(&sampler, k as u64, 11, false, &control).unwrap();
         // reference: brute-force enumeration of all fields with total 5
-        let exact = enumerate(&p, |t| t == 5);
+        let exact = enumerate(&p, |x| x.count_ones() == 5);
         let count = |x: usize, z: &Zone| zone_count(x, z) as f64;
         let moment = |f: &dyn Fn(usize) -> f64| -> f64 {
             exact.iter().enumerate().map(|(x, w)| w * f(x)).sum()

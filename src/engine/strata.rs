@@ -71,6 +71,11 @@ impl StratumCells {
     pub fn raster(&self) -> &Raster {
         &self.raster
     }
+
+    /// The stratum's cells in ascending raster order: cell i of its own raster is `cells()[i]`.
+    pub fn cells(&self) -> &[CellIndex] {
+        &self.cells
+    }
 }
 
 /// Disjoint strata, each with its evidence checked against its own raster.
@@ -112,6 +117,11 @@ impl Strata {
 
     pub fn len(&self) -> usize {
         self.parts.len()
+    }
+
+    /// Each stratum and its evidence, in the strata's order.
+    pub fn parts(&self) -> &[(StratumCells, Evidence)] {
+        &self.parts
     }
 
     pub fn is_empty(&self) -> bool {

@@ -8,6 +8,7 @@
 //! own context and runs the same code.
 
 pub mod cell_posterior;
+pub mod scenarios;
 pub mod total_check;
 pub mod zone_counts;
 
@@ -29,6 +30,7 @@ pub fn registry() -> Vec<Arc<dyn Process>> {
         Arc::new(zone_counts::ZoneCounts),
         Arc::new(cell_posterior::CellPosteriorProcess),
         Arc::new(total_check::TotalCheckProcess),
+        Arc::new(scenarios::ScenariosProcess),
     ]
 }
 

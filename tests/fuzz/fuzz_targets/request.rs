@@ -33,6 +33,8 @@ const LIMITS: Limits = Limits {
     max_cost: 1e7,
     max_vertices: 10_000,
     max_exceedance_values: 10_000,
+    max_scenarios: 100,
+    max_scenario_bytes: 1 << 20,
 };
 
 fuzz_target!(|data: &[u8]| {
