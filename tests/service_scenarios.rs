@@ -368,3 +368,54 @@ async fn the_process_is_listed_and_described() {
     }
     assert!(d["outputs"]["scenarios"]["schema"].is_object());
 }
+
+#[tokio::test]
+async fn event_cells_come_as_geojson_points_at_the_cell_centres() {
+    let (_, app) = state_with(config());
+    // A georeferenced 4x3 raster of 10 m cells from (1000, 2000).
+    let mut raster = uneven_raster(4, 3);
+    raster["geotransform"] = json!([1000.0, 10.0, 0.0, 2000.0, 0.0, -10.0]);
+    let inputs = json!({"raster": raster, "zones": [{"id": "all", "rect": {"row": 0, "col": 0, "rows": 3, "cols": 4}}],
+        "evidence": {"total": 5}, "count": 40, "seed": 3, "cells": true});
+    let json_doc = post_json(&app, PATH, &json!({"inputs": inputs}), None)
+        .await
+        .ok_json();
+    let body = json!({"inputs": inputs, "outputs": {"scenarios": {"format": {"mediaType": "application/geo+json"}}}});
+    let r = post_json(&app, PATH, &body, None).await;
+    assert_eq!(
+        r.header("content-type").as_deref(),
+        Some("application/geo+json")
+    );
+    let points = r.ok_json();
+    assert_eq!(points["type"], "FeatureCollection");
+    let features = points["features"].as_array().unwrap();
+    assert_eq!(
+        features.len(),
+        40 * 5,
+        "one point per event cell and scenario"
+    );
+    let mut at = 0;
+    for (i, d) in samples(&json_doc).iter().enumerate() {
+        for cell in cells_of(d) {
+            let f = &features[at];
+            at += 1;
+            assert_eq!(f["properties"]["scenario"], i);
+            assert_eq!(f["properties"]["cell"], cell);
+            let (row, col) = ((cell / 4) as f64, (cell % 4) as f64);
+            // reference: closed form, the cell-centre rule (x0 + (col + 1/2) dx, y0 + (row +
+            // 1/2) dy), as rasterio.transform.xy gives with offset="center"
+            assert_eq!(
+                f["geometry"],
+                json!({"type": "Point", "coordinates": [1000.0 + (col + 0.5) * 10.0, 2000.0 - (row + 0.5) * 10.0]})
+            );
+        }
+    }
+    assert_eq!(points["summary"], json_doc["summary"]);
+    assert_eq!(points["grid"]["geotransform"], raster["geotransform"]);
+    // Points need the event cells.
+    let mut without = body.clone();
+    without["inputs"]["cells"] = json!(false);
+    let r = post_json(&app, PATH, &without, None).await;
+    assert_eq!(r.status, StatusCode::BAD_REQUEST);
+    assert_eq!(r.json()["pointer"], "/inputs/cells");
+}

@@ -1,15 +1,16 @@
 //! Output formats beyond JSON: a GeoJSON FeatureCollection and CSV for zone counts, a GeoTIFF
-//! for cell posteriors. Each is written from the same results document as the JSON output, so
+//! for cell posteriors, GeoJSON points for the event cells of scenarios. Each is written from the same results document as the JSON output, so
 //! every format carries the same numbers (written by the same shortest round-trip rule).
 //!
 //! Which format a request gets is chosen once, by `outputs.<id>.format.mediaType` in the
 //! execute body, else by `Accept`, else JSON; an unsupported choice is refused, never ignored.
 
+use serde::Serialize;
 use serde_json::{json, Map, Value};
 
 use super::decode::{DecodedZones, Frame, ZoneShape};
 use super::problem::ApiError;
-use super::wire::{PosteriorDocument, ResultsDocument, ZoneResult};
+use super::wire::{PosteriorDocument, ResultsDocument, ScenariosDocument, ZoneResult};
 use crate::engine::Raster;
 use crate::geo::zones::Polygon;
 use crate::geo::{geotiff, outline, GeoTransform, Grid};
@@ -283,6 +284,75 @@ pub fn zone_counts_geojson(
     serde_json::to_vec(&collection).map_err(|e| ApiError::Internal {
         cause: format!("cannot encode GeoJSON: {e}"),
     })
+}
+
+/// The event cells of every scenario as GeoJSON points at the cells' centres, one feature per
+/// event cell and scenario (`scenario`: its draw number, `cell`: its row-major index), in draw
+/// order; the summary, the error bound, the total check and the grid as foreign members.
+/// Written feature by feature: a run of 1,000 maps can hold millions of points.
+pub fn scenario_points(doc: &ScenariosDocument, frame: &Frame) -> Result<Vec<u8>, ApiError> {
+    #[derive(Serialize)]
+    struct Point {
+        r#type: &'static str,
+        coordinates: [f64; 2],
+    }
+    #[derive(Serialize)]
+    struct Props {
+        scenario: usize,
+        cell: u32,
+    }
+    #[derive(Serialize)]
+    struct Feature {
+        r#type: &'static str,
+        geometry: Point,
+        properties: Props,
+    }
+    let fault = |e: serde_json::Error| ApiError::Internal {
+        cause: format!("cannot encode GeoJSON: {e}"),
+    };
+    let grid = drawing_grid(frame);
+    let transform = grid.transform.ok_or_else(|| ApiError::Internal {
+        cause: "the drawing grid has no transform".into(),
+    })?;
+    let width = grid.width.max(1);
+    let mut out = Vec::new();
+    out.extend_from_slice(b"{\"type\":\"FeatureCollection\",\"features\":[");
+    let mut first = true;
+    for (i, d) in doc.samples.draws.iter().enumerate() {
+        for &cell in d.cells.iter().flatten() {
+            if !first {
+                out.push(b',');
+            }
+            first = false;
+            let (x, y) = transform.cell_centre(cell / width, cell % width);
+            serde_json::to_writer(
+                &mut out,
+                &Feature {
+                    r#type: "Feature",
+                    geometry: Point {
+                        r#type: "Point",
+                        coordinates: [x, y],
+                    },
+                    properties: Props { scenario: i, cell },
+                },
+            )
+            .map_err(fault)?;
+        }
+    }
+    out.extend_from_slice(b"],\"summary\":");
+    serde_json::to_writer(&mut out, &doc.summary).map_err(fault)?;
+    out.extend_from_slice(b",\"error_bound\":");
+    serde_json::to_writer(&mut out, &doc.error_bound).map_err(fault)?;
+    out.extend_from_slice(b",\"total\":");
+    serde_json::to_writer(&mut out, &doc.total).map_err(fault)?;
+    let mut grid_member = grid_member(frame);
+    if frame.grid.transform.is_none() {
+        grid_member["units"] = json!("cells: x is the column, y minus the row");
+    }
+    out.extend_from_slice(b",\"grid\":");
+    serde_json::to_writer(&mut out, &grid_member).map_err(fault)?;
+    out.push(b'}');
+    Ok(out)
 }
 
 /// Where the coordinates lie: the raster's size, geotransform and CRS.

@@ -904,4 +904,39 @@ mod tests {
         }
         assert_ne!(one[0], one[1], "draws of one stream differ");
     }
+
+    #[test]
+    fn a_long_run_reports_progress_and_stops_when_cancelled() {
+        let p: Vec<f64> = (0..5000)
+            .map(|i| ((i * 7919 % 997) as f64 + 0.5) / 4000.0)
+            .collect();
+        let raster = Raster::from_probabilities(100, 50, p).unwrap();
+        let zones = vec![Zone::new("a", (0..2500).collect(), &raster).unwrap()];
+        let control = std::sync::Arc::new(Control::new());
+        let n = Normaliser::new(&raster, 700, &control).unwrap();
+        let sampler = Sampler::new(&raster, &zones, &n, &control).unwrap();
+        let watcher = {
+            let control = control.clone();
+            std::thread::spawn(move || {
+                let start = std::time::Instant::now();
+                while control.progress() == 0.0 {
+                    assert!(start.elapsed().as_secs() < 60, "no progress was reported");
+                    std::thread::yield_now();
+                }
+                control.cancel();
+                control.progress()
+            })
+        };
+        let pool = rayon::ThreadPoolBuilder::new()
+            .num_threads(1)
+            .build()
+            .unwrap();
+        let got = pool.install(|| scenarios(&sampler, 1_000_000, 1, true, &control));
+        let seen = watcher.join().unwrap();
+        assert!(
+            matches!(got, Err(EngineError::Cancelled)),
+            "the run was not stopped"
+        );
+        assert!(seen > 0.0 && seen < 0.5, "progress {seen} when cancelled");
+    }
 }

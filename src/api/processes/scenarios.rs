@@ -11,7 +11,7 @@ use super::{
     Process, ResponseMode,
 };
 use crate::api::decode::{self, DecodeError, Decoded, DecodedEvidence};
-use crate::api::formats::Format;
+use crate::api::formats::{self, Format};
 use crate::api::problem::ApiError;
 use crate::api::wire::{
     AtLeastOut, CorrelationOut, EvalRequest, EvidenceSpec, RasterInput, ScenarioInputs,
@@ -24,8 +24,8 @@ pub struct ScenariosProcess;
 
 const OUTPUT: &str = "scenarios";
 
-/// The formats of the `scenarios` output.
-pub const FORMATS: [Format; 1] = [Format::Json];
+/// The formats of the `scenarios` output: JSON, or the event cells as GeoJSON points.
+pub const FORMATS: [Format; 2] = [Format::Json, Format::GeoJson];
 
 /// Most zones whose pairwise correlations one request may ask for: the matrix grows with
 /// their square.
@@ -35,6 +35,9 @@ pub const MAX_CORRELATION_ZONES: usize = 50;
 const BYTES_PER_COUNT: u64 = 12;
 /// Bytes one event cell takes in the output: up to ten digits and a comma.
 const BYTES_PER_CELL: u64 = 11;
+/// Bytes one event cell takes as a GeoJSON point: the feature's frame, two coordinates of up
+/// to 24 characters, the scenario and cell numbers.
+const BYTES_PER_POINT: u64 = 128;
 
 impl Process for ScenariosProcess {
     fn id(&self) -> &'static str {
@@ -73,8 +76,9 @@ impl Process for ScenariosProcess {
         accept: Option<&str>,
         ctx: &Context,
     ) -> Result<(ResponseMode, Box<dyn Prepared>), ApiError> {
-        let (req, mode, _): (ScenarioInputs, _, _) = parse_execute(body, OUTPUT, accept, &FORMATS)?;
-        let draws = prepare(req, ctx).map_err(|e| ApiError::from_decode(e, "/inputs"))?;
+        let (req, mode, format): (ScenarioInputs, _, _) =
+            parse_execute(body, OUTPUT, accept, &FORMATS)?;
+        let draws = prepare(req, format, ctx).map_err(|e| ApiError::from_decode(e, "/inputs"))?;
         Ok((mode, Box::new(draws)))
     }
 }
@@ -90,11 +94,19 @@ pub struct Draws {
     correlation: Vec<usize>,
     cost: f64,
     output_bytes: u64,
+    format: Format,
 }
 
-/// Decodes and plans a request, refusing it when its draws, output or cost are over the limits.
-pub fn prepare(req: ScenarioInputs, ctx: &Context) -> Result<Draws, DecodeError> {
+/// Decodes and plans a request whose output is asked as `format`, refusing it when its draws,
+/// output or cost are over the limits.
+pub fn prepare(req: ScenarioInputs, format: Format, ctx: &Context) -> Result<Draws, DecodeError> {
     let limits = &ctx.limits;
+    if format == Format::GeoJson && !req.cells {
+        return Err(DecodeError::at(
+            "/cells",
+            "the GeoJSON output holds each scenario's event cells as points, and `cells` is false: set `cells` to true, or ask for JSON",
+        ));
+    }
     if req.count == 0 || req.count > limits.max_scenarios {
         let detail = if req.count == 0 {
             "`count` is 0: ask for at least one scenario".to_string()
@@ -177,10 +189,15 @@ pub fn prepare(req: ScenarioInputs, ctx: &Context) -> Result<Draws, DecodeError>
         DecodedEvidence::Strata(_) => nonzero,
     };
     let ids: u64 = entries.iter().map(|e| e.id.len() as u64).sum();
+    let per_cell = if format == Format::GeoJson {
+        BYTES_PER_POINT
+    } else {
+        BYTES_PER_CELL
+    };
     let per_draw = ids
         + entries.len() as u64 * BYTES_PER_COUNT
         + 32
-        + if cells { events * BYTES_PER_CELL } else { 0 };
+        + if cells { events * per_cell } else { 0 };
     let output_bytes = per_draw.saturating_mul(count);
     if output_bytes > limits.max_scenario_bytes {
         return Err(DecodeError::limit(
@@ -204,6 +221,7 @@ pub fn prepare(req: ScenarioInputs, ctx: &Context) -> Result<Draws, DecodeError>
         correlation,
         cost,
         output_bytes,
+        format,
     })
 }
 
@@ -374,6 +392,12 @@ impl Prepared for Draws {
     }
     fn run(self: Box<Self>, ctx: &Context, control: &Control) -> Result<Output, ApiError> {
         let doc = compute(&self, ctx, control).map_err(run_error)?;
-        to_json(&doc)
+        match self.format {
+            Format::GeoJson => Ok(Output {
+                body: bytes::Bytes::from(formats::scenario_points(&doc, &self.decoded.frame)?),
+                format: Format::GeoJson,
+            }),
+            _ => to_json(&doc),
+        }
     }
 }
