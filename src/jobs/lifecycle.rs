@@ -7,6 +7,9 @@
 //!     \--fail------------+---dismiss-----> dismissed (a tombstone: forgotten by clients)
 //! ```
 //!
+//! Any state but dismissed can be dismissed. The manager keeps a dismissed record only while
+//! the job's work is queued or running, so the worker sees the flag, and removes it after.
+//!
 //! A record holds plain data only (no live handles, no monotonic instants), so a store outside
 //! the process can keep it: wall-clock timestamps, an owner, the cancellation flag, and the
 //! outcome as opaque bytes that `api` encoded. Transitions are visible inside `jobs` only; the

@@ -158,6 +158,14 @@ impl Inner {
             });
         }
         self.live().remove(id);
+        // A job dismissed while it ran leaves a tombstone for its worker: it is no longer needed.
+        if self
+            .store
+            .get(id)
+            .is_some_and(|j| j.state() == JobState::Dismissed)
+        {
+            self.store.remove(id);
+        }
     }
 
     /// Copies progress in and the cancellation flag out; returns whether the job runs.
@@ -297,15 +305,24 @@ impl Jobs {
     }
 
     /// Dismisses a job: sets the stored flag, cancels its computation if it runs here, and
-    /// forgets it for clients. `None` when unknown, expired or already dismissed.
+    /// forgets it for clients. The record stays as a tombstone only while its computation is
+    /// queued or running here (so the worker sees the flag), and is removed when that ends;
+    /// a job whose work had ended is removed at once, so dismissed jobs hold no memory.
+    /// `None` when unknown, expired or already dismissed.
     pub fn dismiss(&self, id: &str) -> Option<JobRecord> {
         let now = SystemTime::now();
         let mut applied = false;
         let record = self.inner.store.update(id, &mut |j| {
             applied = j.dismiss(now, self.inner.limits.ttl).is_ok();
         })?;
-        if let Some(control) = self.inner.live().get(id) {
-            control.cancel();
+        let live = self.inner.live().get(id).cloned();
+        match live {
+            Some(control) => control.cancel(),
+            // `end` removes the job from `live` before it looks for a tombstone, so one of the
+            // two always sees the other's change.
+            None => {
+                self.inner.store.remove(id);
+            }
         }
         applied.then_some(record)
     }
@@ -449,5 +466,54 @@ mod tests {
             }
         ));
         assert_eq!(jobs.counts().total(), 1);
+    }
+
+    #[tokio::test]
+    async fn dismissed_jobs_leave_no_record() {
+        let jobs = Jobs::in_memory(
+            Pool::new(1, 4).unwrap(),
+            Arc::new(Named),
+            JobLimits::ttl(Duration::from_secs(60)),
+        );
+        // A finished job dismissed is removed at once, with its results' bytes.
+        let quick: Work = Box::new(|_: &Control| Ok(Results::json(Bytes::from(vec![b'1'; 4096]))));
+        let done = jobs.submit("p", None, quick).unwrap();
+        finished(&jobs, done.id()).await;
+        assert!(jobs.held_bytes() >= 4096);
+        assert!(jobs.dismiss(done.id()).is_some());
+        assert!(
+            jobs.record(done.id()).is_none(),
+            "a dismissed finished job is kept"
+        );
+        assert!(jobs.dismiss(done.id()).is_none(), "dismissed twice");
+        // A running job dismissed keeps a tombstone until its worker stops, then none.
+        let (tx, rx) = std::sync::mpsc::channel::<()>();
+        let slow: Work = Box::new(move |c: &Control| {
+            let _ = tx.send(());
+            while !c.is_cancelled() {
+                std::thread::sleep(Duration::from_millis(1));
+            }
+            Err(WorkError::Cancelled)
+        });
+        let running = jobs.submit("p", None, slow).unwrap();
+        rx.recv_timeout(Duration::from_secs(10)).unwrap();
+        assert!(jobs.dismiss(running.id()).is_some());
+        let tombstone = jobs.record(running.id());
+        assert!(
+            tombstone.is_none_or(|j| j.state() == JobState::Dismissed && j.cancel_requested()),
+            "the running job's record is not a tombstone"
+        );
+        for _ in 0..500 {
+            if jobs.record(running.id()).is_none() {
+                break;
+            }
+            tokio::time::sleep(Duration::from_millis(10)).await;
+        }
+        assert!(
+            jobs.record(running.id()).is_none(),
+            "the tombstone outlived its worker"
+        );
+        assert_eq!(jobs.counts().total(), 0);
+        assert_eq!(jobs.held_bytes(), 0);
     }
 }
