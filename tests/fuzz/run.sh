@@ -14,7 +14,7 @@ cd "$root"
 seconds=${1:-60}
 shift || true
 targets=("$@")
-[ "${#targets[@]}" -gt 0 ] || targets=(request geojson geotiff engine)
+[ "${#targets[@]}" -gt 0 ] || targets=(request geojson geotiff engine scenarios)
 export RUSTC_BOOTSTRAP=1
 
 if ! command -v cargo-fuzz >/dev/null 2>&1; then

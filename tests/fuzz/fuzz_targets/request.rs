@@ -4,27 +4,13 @@
 #![no_main]
 
 use libfuzzer_sys::fuzz_target;
-use zonetally::api::decode::{
-    zone_counts, DecodeError, DecodedEvidence, Frame, HeldRaster, Limits, RasterSource,
-};
+use zonetally::api::decode::{zone_counts, DecodedEvidence, Limits};
 use zonetally::api::wire::EvalRequest;
-use zonetally::engine::{execute, execute_strata, plan, Control, EngineError, Normaliser, Raster};
+use zonetally::engine::{execute, execute_strata, plan, Control, EngineError, Normaliser};
 
-/// Resolves nothing and reads no file: the fuzzer must not touch the disk.
-struct Sealed;
+mod sealed;
 
-impl RasterSource for Sealed {
-    fn resolve(&self, _: &str) -> Result<(String, HeldRaster), DecodeError> {
-        Err(DecodeError::at("/raster/ref", "no rasters are held"))
-    }
-    fn keep(&self, raster: Raster, frame: Frame) -> (Option<String>, HeldRaster) {
-        let raster = std::sync::Arc::new(raster);
-        (None, HeldRaster { raster, frame })
-    }
-    fn read_file(&self, _: &str, _: u64) -> Result<Vec<u8>, DecodeError> {
-        Err(DecodeError::at("/raster/href", "no files are read"))
-    }
-}
+use sealed::Sealed;
 
 const LIMITS: Limits = Limits {
     max_cells: 1 << 16,
