@@ -10,7 +10,8 @@ Each of 32 clients keeps one connection and, in a loop, picks one of:
 for a warm-up (default 20 s), then the measured run (default 60 s). Reports requests, answers by
 status, p50/p99 latency per kind (as this client saw them, Python threads included), and the
 server's resident memory after the warm-up and after the run, each read with every client
-paused between requests.
+paused between requests, beside what the server reports holding then (cache bytes and job
+records from /metrics), so a drift can be told apart from held data.
 
 Passes when every answer is 2xx or a deliberate 429/503 and every async job that was accepted
 finished successfully. RSS after the run within 10% of RSS after the warm-up is a target,
@@ -223,6 +224,22 @@ def run(port, pid, args):
     threads = [threading.Thread(target=client, args=(i,), daemon=True) for i in range(CLIENTS)]
     for t in threads:
         t.start()
+    def held():
+        # What the server says it holds, read beside RSS: cache bytes and job records.
+        status, _, body = Client(port).request("GET", "/metrics")
+        if status != 200:
+            return {}
+        out = {"raster cache": 0, "normaliser cache": 0, "job records": 0}
+        for line in body.decode().splitlines():
+            name, _, value = line.rpartition(" ")
+            if name == 'zonetally_cache_bytes{cache="raster"}':
+                out["raster cache"] = int(float(value))
+            elif name == 'zonetally_cache_bytes{cache="normaliser"}':
+                out["normaliser cache"] = int(float(value))
+            elif name.startswith("zonetally_jobs{"):
+                out["job records"] += int(float(value))
+        return out
+
     def quiet_rss():
         running.clear()
         for _ in threads:
@@ -232,17 +249,18 @@ def run(port, pid, args):
         # after it (with a 3 s wait the readings swung by -26% to +12% around the same state).
         time.sleep(QUIET_S)
         value = rss(pid)
+        holding = held()
         running.set()
-        return value
+        return value, holding
 
     time.sleep(args.warmup)
-    warm = quiet_rss()
+    warm, warm_held = quiet_rss()
     with tally.lock:
         tally.reset()
     start = time.monotonic()
     time.sleep(args.seconds)
     elapsed = time.monotonic() - start
-    after = quiet_rss()
+    after, after_held = quiet_rss()
     stop.set()
     for t in threads:
         t.join(120)
@@ -257,6 +275,7 @@ def run(port, pid, args):
         print(f"  {kind:<13} {len(lat):>7} {percentile(lat, 0.5) * 1e3:>9.1f} {percentile(lat, 0.99) * 1e3:>9.1f}")
     drift = (after - warm) / warm
     print(f"  RSS after warm-up {warm / 2**20:.0f} MiB, after the run {after / 2**20:.0f} MiB ({drift:+.1%})")
+    print(f"  held after warm-up {warm_held}, after the run {after_held}")
     failed = []
     if tally.unexpected:
         failed.append(f"{len(tally.unexpected)} unexpected answers, e.g. {tally.unexpected[:3]}")
