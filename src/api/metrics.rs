@@ -13,6 +13,7 @@ use axum::extract::{MatchedPath, Request, State};
 use axum::middleware::Next;
 use axum::response::Response;
 
+use super::allocator::AllocatorStats;
 use super::cache::CacheStats;
 use crate::jobs::{JobCounts, JobState, PoolStats};
 
@@ -35,6 +36,8 @@ pub struct Snapshot {
     pub rasters: CacheStats,
     pub normalisers: CacheStats,
     pub jobs: JobCounts,
+    /// The allocator's accounting, when the binary allocates with jemalloc.
+    pub allocator: Option<AllocatorStats>,
 }
 
 #[derive(Default)]
@@ -195,6 +198,17 @@ impl Metrics {
         ] {
             let n = snapshot.jobs.of(st);
             let _ = writeln!(out, "zonetally_jobs{{status=\"{}\"}} {n}", st.as_str());
+        }
+        if let Some(a) = snapshot.allocator {
+            out.push_str("# HELP zonetally_allocator_bytes Bytes by the allocator's accounting: allocated, the pages holding them (active), resident, and freed pages not yet handed back (dirty).\n# TYPE zonetally_allocator_bytes gauge\n");
+            for (kind, bytes) in [
+                ("allocated", a.allocated),
+                ("active", a.active),
+                ("resident", a.resident),
+                ("dirty", a.dirty),
+            ] {
+                let _ = writeln!(out, "zonetally_allocator_bytes{{kind=\"{kind}\"}} {bytes}");
+            }
         }
         out
     }

@@ -6,6 +6,7 @@
 //! routes the router has. The committed copy lives in `openapi/openapi.json`
 //! (`zonetally openapi > openapi/openapi.json` regenerates it; a test fails when they differ).
 
+pub mod allocator;
 pub mod auth;
 pub mod body;
 pub mod budget;

@@ -38,7 +38,8 @@ use super::body::problem_response;
 use super::config::Config;
 use super::state::AppState;
 
-/// How often expired jobs are swept out.
+/// How often expired jobs are swept out and, when no computation runs, the allocator hands
+/// back the pages freed since (`allocator::release_freed`).
 const SWEEP_EVERY: Duration = Duration::from_secs(5);
 
 /// First pause after `accept` fails for want of descriptors or memory; doubled on every failure
@@ -143,6 +144,11 @@ pub async fn serve_on(
             loop {
                 tick.tick().await;
                 state.jobs().purge_expired();
+                // Idle: hand the pages the last computations freed back to the system.
+                let pool = state.pool_stats();
+                if pool.queued == 0 && pool.running == 0 {
+                    super::allocator::release_freed();
+                }
             }
         })
     };

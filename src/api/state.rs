@@ -177,6 +177,7 @@ impl AppState {
             rasters: caches.raster_stats(),
             normalisers: caches.normaliser_stats(),
             jobs: self.inner.jobs.counts(),
+            allocator: super::allocator::stats(),
         }
     }
 
