@@ -363,7 +363,12 @@ async fn dismissing_a_queued_job_cancels_it_before_it_runs() {
     let created = submit_tea_job(&app).await;
     let location = created.header("location").unwrap();
     let job_id = created.json()["jobID"].as_str().unwrap().to_string();
-    assert!(!state.jobs().record(&job_id).unwrap().cancel_requested());
+    assert!(!state
+        .jobs()
+        .record(&job_id)
+        .unwrap()
+        .unwrap()
+        .cancel_requested());
     let dismissed = send(
         &app,
         Request::delete(&location).body(Body::empty()).unwrap(),
@@ -372,7 +377,12 @@ async fn dismissing_a_queued_job_cancels_it_before_it_runs() {
     assert_eq!(dismissed.status, StatusCode::OK);
     assert_eq!(dismissed.json()["status"], "dismissed");
     assert!(
-        state.jobs().record(&job_id).unwrap().cancel_requested(),
+        state
+            .jobs()
+            .record(&job_id)
+            .unwrap()
+            .unwrap()
+            .cancel_requested(),
         "dismiss must set the job's stored cancellation flag"
     );
     assert_eq!(

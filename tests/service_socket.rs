@@ -283,7 +283,7 @@ async fn shutdown_fails_unfinished_jobs_and_lets_the_server_stop() {
         matches!(stopped, Ok(Ok(Ok(())))),
         "the server did not stop cleanly: {stopped:?}"
     );
-    let job = server.state.jobs().record(&id).unwrap();
+    let job = server.state.jobs().record(&id).unwrap().unwrap();
     assert_eq!(job.state().as_str(), "failed");
     assert!(job.message().contains("shut down"));
     assert!(job.cancel_requested());

@@ -132,6 +132,7 @@ fn visible(
     state
         .jobs()
         .status(id)
+        .map_err(|e| state.store_down(e))?
         .filter(|j| caller.may_see(j.owner()))
         .ok_or_else(|| ApiError::NoSuchJob { id: id.to_string() })
 }
@@ -142,7 +143,8 @@ fn visible(
            ("limit" = Option<usize>, Query, minimum = 1, maximum = 1000, description = "page size, 1 to 1000 (default 10)"),
            ("offset" = Option<usize>, Query, description = "jobs to skip (paging links carry it)")),
     responses((status = 200, description = "the jobs held, newest first", body = JobList),
-              (status = 400, description = "bad query parameter", body = Problem, content_type = "application/problem+json")))]
+              (status = 400, description = "bad query parameter", body = Problem, content_type = "application/problem+json"),
+              (status = 503, description = "the job store cannot be reached: retry after `Retry-After` seconds", body = Problem, content_type = "application/problem+json")))]
 pub async fn jobs(
     State(state): State<AppState>,
     Extension(caller): Extension<Caller>,
@@ -181,7 +183,10 @@ pub async fn jobs(
     }
     let limit = number(&pairs, "limit", DEFAULT_PAGE, (1, MAX_PAGE))?;
     let offset = number(&pairs, "offset", 0, (0, usize::MAX))?;
-    let (page, matched) = state.jobs().list(&filter, offset, limit);
+    let (page, matched) = state
+        .jobs()
+        .list(&filter, offset, limit)
+        .map_err(|e| state.store_down(e))?;
     let keep: Vec<String> = pairs
         .iter()
         .filter(|(k, _)| k == "processID" || k == "status" || k == "type")
@@ -241,7 +246,8 @@ fn matches_etag(headers: &HeaderMap, etag: &str) -> bool {
     responses((status = 200, description = "job status; `Retry-After` while unfinished", body = StatusInfo,
                    headers(("ETag" = String, description = "changes whenever the status does"))),
               (status = 304, description = "unchanged since the given ETag"),
-              (status = 404, description = "no such job", body = Problem, content_type = "application/problem+json")))]
+              (status = 404, description = "no such job", body = Problem, content_type = "application/problem+json"),
+              (status = 503, description = "the job store cannot be reached: retry after `Retry-After` seconds", body = Problem, content_type = "application/problem+json")))]
 pub async fn job(
     State(state): State<AppState>,
     Extension(caller): Extension<Caller>,
@@ -283,7 +289,8 @@ pub async fn job(
     responses((status = 200, description = "the results, shaped and encoded as the execute request asked (JSON, GeoJSON, CSV or GeoTIFF)",
                   content((Object = "application/json"), (Object = "application/geo+json"), (String = "text/csv"), (Vec<u8> = "image/tiff; application=geotiff"))),
               (status = 404, description = "no such job, or result not ready", body = Problem, content_type = "application/problem+json"),
-              (status = 500, description = "the job failed: its exception document", body = Problem, content_type = "application/problem+json")))]
+              (status = 500, description = "the job failed: its exception document", body = Problem, content_type = "application/problem+json"),
+              (status = 503, description = "the job store cannot be reached: retry after `Retry-After` seconds", body = Problem, content_type = "application/problem+json")))]
 pub async fn results(
     State(state): State<AppState>,
     Extension(caller): Extension<Caller>,
@@ -325,7 +332,8 @@ pub async fn results(
 #[utoipa::path(delete, path = "/jobs/{jobId}", tag = "ogc",
     params(("jobId" = String, Path, description = "job id")),
     responses((status = 200, description = "dismissed: the computation is cancelled and the job forgotten", body = StatusInfo),
-              (status = 404, description = "no such job", body = Problem, content_type = "application/problem+json")))]
+              (status = 404, description = "no such job", body = Problem, content_type = "application/problem+json"),
+              (status = 503, description = "the job store cannot be reached: retry after `Retry-After` seconds", body = Problem, content_type = "application/problem+json")))]
 pub async fn dismiss(
     State(state): State<AppState>,
     Extension(caller): Extension<Caller>,
@@ -335,6 +343,7 @@ pub async fn dismiss(
     let job = state
         .jobs()
         .dismiss(&id)
+        .map_err(|e| state.store_down(e))?
         .ok_or(ApiError::NoSuchJob { id })?;
     Ok(Json(status_info(&job)))
 }

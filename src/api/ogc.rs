@@ -230,7 +230,7 @@ fn shape(mode: ResponseMode, output: &str, raw: Bytes) -> Bytes {
               (status = 413, description = "body, raster, zones or cost too large, or too costly for sync", body = Problem, content_type = "application/problem+json"),
               (status = 415, description = "not JSON", body = Problem, content_type = "application/problem+json"),
               (status = 422, description = "a GeoTIFF or GeoJSON input that was read but cannot be used (rotated grid, point zone, unclosed ring, value outside [0, 1])", body = Problem, content_type = "application/problem+json"),
-              (status = 503, description = "compute queue full", body = Problem, content_type = "application/problem+json")))]
+              (status = 503, description = "compute queue full, jobs or memory at their limits, or the job store out of reach (with `Retry-After`)", body = Problem, content_type = "application/problem+json")))]
 pub async fn execute(
     State(state): State<AppState>,
     Extension(caller): Extension<Caller>,
@@ -362,6 +362,7 @@ fn start_job(
                     ),
                     retry_after,
                 },
+                SubmitRefused::StoreDown(e) => state.store_down(e),
             }
         })?;
     let mut resp = (StatusCode::CREATED, Json(status_info(&job))).into_response();
@@ -427,13 +428,13 @@ mod tests {
             .unwrap()
             .trim_start_matches("/jobs/")
             .to_string();
-        let mut job = state.jobs().status(&id).unwrap();
+        let mut job = state.jobs().status(&id).unwrap().unwrap();
         for _ in 0..1000 {
             if job.state().is_finished() {
                 break;
             }
             tokio::time::sleep(std::time::Duration::from_millis(5)).await;
-            job = state.jobs().status(&id).unwrap();
+            job = state.jobs().status(&id).unwrap().unwrap();
         }
         assert_eq!(job.state(), JobState::Failed);
         match job.outcome() {

@@ -48,8 +48,13 @@ pub struct Readiness {
               (status = 503, description = "not ready (shutting down, store unavailable)", body = Problem, content_type = "application/problem+json")))]
 pub async fn readyz(State(state): State<AppState>) -> Result<Json<Readiness>, ApiError> {
     let pool = state.pool().stats();
-    if state.is_shutting_down() || !state.jobs().store_ready() || pool.threads == 0 {
+    if state.is_shutting_down() || pool.threads == 0 {
         return Err(ApiError::ShuttingDown);
+    }
+    if !state.jobs().store_ready() {
+        return Err(ApiError::StoreDown {
+            retry_after: state.config().retry_after,
+        });
     }
     // A full queue refuses every execution: not ready until a slot frees (it does by itself).
     if pool.queued + pool.running >= pool.capacity {
@@ -65,7 +70,11 @@ pub async fn readyz(State(state): State<AppState>) -> Result<Json<Readiness>, Ap
             false => state.sync_pool().stats().threads,
         },
         queue_free: pool.capacity.saturating_sub(pool.queued + pool.running),
-        jobs: state.jobs().counts().total(),
+        jobs: state
+            .jobs()
+            .counts()
+            .map_err(|e| state.store_down(e))?
+            .total(),
         memory_budget: state.memory_plan().total,
         request_bytes: state.budget().limit(),
         request_bytes_used: state.budget().used(),

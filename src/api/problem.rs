@@ -127,6 +127,10 @@ pub enum ApiError {
         detail: String,
         retry_after: u64,
     },
+    /// The job store could not be reached (the cause is logged, not sent).
+    StoreDown {
+        retry_after: u64,
+    },
     /// The computation was cancelled (dismissed, client gone, timed out, shutdown).
     Cancelled,
     /// Anything else: the detail stays generic, the cause is logged.
@@ -154,7 +158,9 @@ impl ApiError {
             NotAcceptable { .. } => StatusCode::NOT_ACCEPTABLE,
             Busy { .. } | ShuttingDown | Cancelled => StatusCode::SERVICE_UNAVAILABLE,
             Timeout { .. } | JobTimeout { .. } => StatusCode::GATEWAY_TIMEOUT,
-            JobsFull { .. } | OverBudget { .. } => StatusCode::SERVICE_UNAVAILABLE,
+            JobsFull { .. } | OverBudget { .. } | StoreDown { .. } => {
+                StatusCode::SERVICE_UNAVAILABLE
+            }
             Unauthorized { .. } => StatusCode::UNAUTHORIZED,
             RateLimited { .. } => StatusCode::TOO_MANY_REQUESTS,
             Internal { .. } => StatusCode::INTERNAL_SERVER_ERROR,
@@ -277,6 +283,12 @@ impl ApiError {
                 format!("the request ran past this service's limit of {seconds} s: send it with `Prefer: respond-async` and poll the job"),
                 None,
             ),
+            StoreDown { retry_after } => (
+                own("job-store"),
+                "job store unavailable",
+                format!("the job store cannot be reached: retry in {retry_after} s"),
+                None,
+            ),
             Cancelled => (own("cancelled"), "cancelled", "the computation was cancelled before it finished".to_string(), None),
             ShuttingDown => (own("shutting-down"), "shutting down", "the service is shutting down: retry shortly".to_string(), None),
             Internal { .. } => (
@@ -354,6 +366,7 @@ impl Failures for JobFailures {
                 cause: "the computation panicked".into(),
             },
             Ending::ShutDown => ApiError::ShuttingDown,
+            Ending::StoreDown => ApiError::StoreDown { retry_after: 5 },
             Ending::TimedOut(limit) => ApiError::JobTimeout {
                 seconds: limit.as_secs_f64(),
             },
@@ -390,6 +403,7 @@ impl IntoResponse for ApiError {
             ApiError::Busy { retry_after }
             | ApiError::JobsFull { retry_after, .. }
             | ApiError::OverBudget { retry_after, .. }
+            | ApiError::StoreDown { retry_after }
             | ApiError::RateLimited { retry_after } => {
                 resp.headers_mut()
                     .insert(header::RETRY_AFTER, HeaderValue::from(*retry_after));

@@ -143,7 +143,9 @@ pub async fn serve_on(
             let mut tick = tokio::time::interval(SWEEP_EVERY);
             loop {
                 tick.tick().await;
-                state.jobs().purge_expired();
+                if let Err(e) = state.jobs().purge_expired() {
+                    tracing::warn!(error = %e, "cannot sweep expired jobs");
+                }
                 // Idle: hand the pages the last computations freed back to the system.
                 let pool = state.pool_stats();
                 if pool.queued == 0 && pool.running == 0 {

@@ -43,9 +43,15 @@ struct Inner {
 impl AppState {
     /// The embedded set-up: an in-memory job store.
     pub fn new(config: Config) -> Result<AppState, String> {
+        AppState::with_job_store(config, crate::jobs::Store::memory())
+    }
+
+    /// The service keeping its jobs in `store`.
+    pub fn with_job_store(config: Config, store: crate::jobs::Store) -> Result<AppState, String> {
         let pool = Pool::new(config.threads, config.queue)?;
         let memory = config.memory_plan()?;
-        let jobs = Jobs::in_memory(
+        let jobs = Jobs::new(
+            store,
             pool,
             Arc::new(JobFailures),
             config.job_limits(memory.job_results),
@@ -129,6 +135,14 @@ impl AppState {
     pub fn jobs(&self) -> &Jobs {
         &self.inner.jobs
     }
+    /// The answer to a job store that cannot be reached: a 503 with Retry-After; the cause
+    /// goes to the log only.
+    pub fn store_down(&self, e: crate::jobs::StoreDown) -> ApiError {
+        tracing::warn!(error = %e, "job store unavailable");
+        ApiError::StoreDown {
+            retry_after: self.config().retry_after,
+        }
+    }
     /// The pool async jobs run on.
     pub fn pool(&self) -> &Pool {
         self.inner.jobs.pool()
@@ -176,7 +190,7 @@ impl AppState {
             pool: self.pool_stats(),
             rasters: caches.raster_stats(),
             normalisers: caches.normaliser_stats(),
-            jobs: self.inner.jobs.counts(),
+            jobs: self.inner.jobs.counts().unwrap_or_default(),
             allocator: super::allocator::stats(),
         }
     }

@@ -589,7 +589,10 @@ fn sync_latency(shared: bool) -> Result<([f64; 2], usize, bool), String> {
                 .to_string();
             jobs.push(location);
         }
-        let running = || state.jobs().counts().of(crate::jobs::JobState::Running);
+        let running = || {
+            let counts = state.jobs().counts().unwrap_or_default();
+            counts.of(crate::jobs::JobState::Running)
+        };
         let waited = Instant::now();
         while running() < 2 && waited.elapsed().as_secs() < 60 {
             tokio::time::sleep(std::time::Duration::from_millis(5)).await;

@@ -17,12 +17,22 @@ use tokio::sync::oneshot;
 
 use super::lifecycle::{Failure, JobRecord, JobState, Results};
 use super::runner::{Finished, Pool, QueueFull};
-use super::{JobCounts, JobFilter, JobStore};
+use super::{JobCounts, JobFilter, JobStore, StoreDown, Stored};
 use crate::engine::Control;
 
 /// How often a watcher copies progress into the record and reads the cancellation flag: often
 /// enough that a dismissed job stops within a tenth of a second, rarely enough to cost nothing.
 const WATCH_EVERY: Duration = Duration::from_millis(100);
+
+/// While the store is down, a job's ending (its results or failure) is written again after
+/// these waits, doubling from the first to the last: the ending is never dropped, and a store
+/// back within seconds gets it within a fraction of one.
+const RETRY_FIRST: Duration = Duration::from_millis(100);
+const RETRY_LAST: Duration = Duration::from_secs(5);
+
+/// How long a compute thread waits for the store to move a job to running before it fails the
+/// job instead (as `Ending::StoreDown`, written when the store is back).
+const START_PATIENCE: Duration = Duration::from_secs(10);
 
 /// What the manager holds jobs to: how long one may run, and how many (and how many bytes of
 /// records and results) the store may hold before new submissions are refused.
@@ -51,7 +61,7 @@ impl JobLimits {
 }
 
 /// Why a submission was refused (nothing was stored).
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+#[derive(Clone, Debug, PartialEq, Eq)]
 pub enum SubmitRefused {
     /// Every compute permit is taken.
     QueueFull,
@@ -62,6 +72,8 @@ pub enum SubmitRefused {
         max_held: usize,
         max_bytes: u64,
     },
+    /// The store could not be reached: nothing was accepted.
+    StoreDown(StoreDown),
 }
 
 impl From<QueueFull> for SubmitRefused {
@@ -81,6 +93,9 @@ pub enum Ending {
     Panicked,
     /// The service shut down before the job finished.
     ShutDown,
+    /// The job store could not be reached when the job was to start, for longer than
+    /// `START_PATIENCE`.
+    StoreDown,
 }
 
 /// Encodes the failures the manager decides (the api layer's problem documents).
@@ -120,8 +135,9 @@ impl Inner {
         self.live.lock().unwrap_or_else(|p| p.into_inner())
     }
 
-    /// Applies the ending of a job's work to its record.
-    fn end(
+    /// Applies the ending of a job's work to its record, trying again while the store is down
+    /// (the ending is never dropped).
+    async fn end(
         &self,
         id: &str,
         finished: Result<Finished<Result<Results, WorkError>>, oneshot::error::RecvError>,
@@ -129,70 +145,95 @@ impl Inner {
     ) {
         let now = SystemTime::now();
         let ttl = self.limits.ttl;
-        let failure = match finished {
-            Ok(Finished::Done(Ok(results))) => {
-                let mut results = Some(results);
-                self.store.update(id, &mut |j| {
-                    if let Some(r) = results.take() {
-                        // Refused when the job was dismissed or failed meanwhile: keep that.
-                        let _ = j.succeed(r, now, ttl);
-                    }
-                });
-                None
-            }
-            Ok(Finished::Done(Err(WorkError::Failed(f)))) => Some(f),
+        let ending: Result<Results, Failure> = match finished {
+            Ok(Finished::Done(Ok(results))) => Ok(results),
+            Ok(Finished::Done(Err(WorkError::Failed(f)))) => Err(f),
             Ok(Finished::Done(Err(WorkError::Cancelled))) | Ok(Finished::Cancelled) => {
-                Some(self.failures.failure(match timed_out {
+                Err(self.failures.failure(match timed_out {
                     Some(limit) => Ending::TimedOut(limit),
                     None => Ending::Cancelled,
                 }))
             }
-            Ok(Finished::Panicked(_)) | Err(_) => Some(self.failures.failure(Ending::Panicked)),
+            Ok(Finished::Panicked(_)) | Err(_) => Err(self.failures.failure(Ending::Panicked)),
         };
-        if let Some(f) = failure {
-            let mut f = Some(f);
-            self.store.update(id, &mut |j| {
-                if let Some(f) = f.take() {
-                    let _ = j.fail(f, now, ttl);
+        let mut wait = RETRY_FIRST;
+        loop {
+            // Either is refused when the job was dismissed or failed meanwhile: keep that.
+            let written = self.store.update(id, &mut |j| match &ending {
+                Ok(results) => {
+                    let _ = j.succeed(results.clone(), now, ttl);
+                }
+                Err(failure) => {
+                    let _ = j.fail(failure.clone(), now, ttl);
                 }
             });
+            match written {
+                Ok(_) => break,
+                Err(e) => {
+                    tracing::warn!(job = id, error = %e, retry_ms = wait.as_millis() as u64, "cannot record the job's ending: trying again");
+                    tokio::time::sleep(wait).await;
+                    wait = (wait * 2).min(RETRY_LAST);
+                }
+            }
         }
         self.live().remove(id);
         // A job dismissed while it ran leaves a tombstone for its worker: it is no longer needed.
-        if self
-            .store
-            .get(id)
-            .is_some_and(|j| j.state() == JobState::Dismissed)
-        {
-            self.store.remove(id);
+        if matches!(self.store.get(id), Ok(Some(j)) if j.state() == JobState::Dismissed) {
+            let _ = self.store.remove(id);
         }
     }
 
-    /// Copies progress in and the cancellation flag out; returns whether the job runs.
+    /// Copies progress in and the cancellation flag out; returns whether the job runs. A store
+    /// that cannot be reached changes nothing: the job goes on, and the next tick tries again.
     fn watch(&self, id: &str, control: &Control) -> bool {
         let percent = (control.progress() * 100.0).floor().clamp(0.0, 99.0) as u8;
         let now = SystemTime::now();
-        let seen = self.store.update(id, &mut |j| {
+        let seen = match self.store.update(id, &mut |j| {
             j.report_progress(percent, now);
-        });
+        }) {
+            Ok(seen) => seen,
+            Err(e) => {
+                tracing::debug!(job = id, error = %e, "cannot copy the job's progress");
+                return false;
+            }
+        };
         if seen.as_ref().is_none_or(|j| j.cancel_requested()) {
             control.cancel();
         }
         seen.is_some_and(|j| j.state() == JobState::Running)
+    }
+
+    /// Moves the job to running from a compute thread; `Ok(false)` when it was dismissed or
+    /// is unknown. Waits for a store that is down, up to `START_PATIENCE`.
+    fn start(&self, id: &str) -> Result<bool, StoreDown> {
+        let deadline = std::time::Instant::now() + START_PATIENCE;
+        let mut wait = RETRY_FIRST;
+        loop {
+            match self.store.update(id, &mut |j| {
+                let _ = j.start(SystemTime::now());
+            }) {
+                Ok(seen) => return Ok(seen.is_some_and(|j| j.state() == JobState::Running)),
+                Err(e) if std::time::Instant::now() + wait > deadline => return Err(e),
+                Err(_) => {
+                    std::thread::sleep(wait);
+                    wait = (wait * 2).min(RETRY_LAST);
+                }
+            }
+        }
     }
 }
 
 impl Jobs {
     /// A manager over `store`, running work on `pool`, holding jobs to `limits`.
     pub fn new(
-        store: Arc<dyn JobStore>,
+        store: super::Store,
         pool: Pool,
         failures: Arc<dyn Failures>,
         limits: JobLimits,
     ) -> Jobs {
         Jobs {
             inner: Arc::new(Inner {
-                store,
+                store: store.0,
                 pool,
                 failures,
                 limits,
@@ -203,7 +244,7 @@ impl Jobs {
 
     /// A manager over a fresh in-memory store (the embedded set-up).
     pub fn in_memory(pool: Pool, failures: Arc<dyn Failures>, limits: JobLimits) -> Jobs {
-        Jobs::new(Arc::new(super::MemoryStore::new()), pool, failures, limits)
+        Jobs::new(super::Store::memory(), pool, failures, limits)
     }
 
     /// Bytes the store holds in records and results.
@@ -216,7 +257,8 @@ impl Jobs {
     }
 
     /// Stores a new accepted job for `process` and queues `work`; the record as accepted, or
-    /// why not (and nothing stored): every permit taken, or the store at its count or byte cap.
+    /// why not (and nothing stored): every permit taken, the store at its count or byte cap, or
+    /// the store unreachable.
     /// Must be called inside the async runtime (the job's watcher is a task).
     pub fn submit(
         &self,
@@ -226,7 +268,11 @@ impl Jobs {
     ) -> Result<JobRecord, SubmitRefused> {
         let limits = self.inner.limits;
         let (held, bytes) = (
-            self.inner.store.counts().total(),
+            self.inner
+                .store
+                .counts()
+                .map_err(SubmitRefused::StoreDown)?
+                .total(),
             self.inner.store.held_bytes(),
         );
         if held >= limits.max_held || bytes >= limits.max_held_bytes {
@@ -239,27 +285,30 @@ impl Jobs {
         }
         let id = uuid::Uuid::new_v4().to_string();
         let record = JobRecord::accept(id.clone(), process.to_string(), owner, SystemTime::now());
-        self.inner.store.insert(record.clone());
+        self.inner
+            .store
+            .insert(record.clone())
+            .map_err(SubmitRefused::StoreDown)?;
         let control = Arc::new(Control::new());
         self.inner.live().insert(id.clone(), control.clone());
         let (inner, job) = (self.inner.clone(), id.clone());
-        let submitted = self.inner.pool.submit(control.clone(), move |c| {
-            let started = inner
-                .store
-                .update(&job, &mut |j| {
-                    let _ = j.start(SystemTime::now());
-                })
-                .is_some_and(|j| j.state() == JobState::Running);
-            if !started {
-                return Err(WorkError::Cancelled);
-            }
-            work(c)
-        });
+        let submitted = self
+            .inner
+            .pool
+            .submit(control.clone(), move |c| match inner.start(&job) {
+                Ok(true) => work(c),
+                Ok(false) => Err(WorkError::Cancelled),
+                Err(_) => Err(WorkError::Failed(inner.failures.failure(Ending::StoreDown))),
+            });
         let rx = match submitted {
             Ok(rx) => rx,
             Err(full) => {
                 self.inner.live().remove(&id);
-                self.inner.store.remove(&id);
+                if let Err(e) = self.inner.store.remove(&id) {
+                    // Left accepted in the store: it expires with nothing run (no TTL is set
+                    // before a job finishes, so say so).
+                    tracing::warn!(job = %id, error = %e, "cannot forget a job the pool refused");
+                }
                 return Err(full.into());
             }
         };
@@ -274,7 +323,7 @@ impl Jobs {
             loop {
                 tokio::select! {
                     finished = &mut rx => {
-                        inner.end(&id, finished, timed_out);
+                        inner.end(&id, finished, timed_out).await;
                         break;
                     }
                     _ = tick.tick() => {
@@ -295,12 +344,14 @@ impl Jobs {
     }
 
     /// The job as clients see it: `None` when unknown, expired or dismissed.
-    pub fn status(&self, id: &str) -> Option<JobRecord> {
-        self.record(id).filter(|j| j.state() != JobState::Dismissed)
+    pub fn status(&self, id: &str) -> Stored<Option<JobRecord>> {
+        Ok(self
+            .record(id)?
+            .filter(|j| j.state() != JobState::Dismissed))
     }
 
     /// The stored record, dismissed tombstones included.
-    pub fn record(&self, id: &str) -> Option<JobRecord> {
+    pub fn record(&self, id: &str) -> Stored<Option<JobRecord>> {
         self.inner.store.get(id)
     }
 
@@ -309,26 +360,34 @@ impl Jobs {
     /// queued or running here (so the worker sees the flag), and is removed when that ends;
     /// a job whose work had ended is removed at once, so dismissed jobs hold no memory.
     /// `None` when unknown, expired or already dismissed.
-    pub fn dismiss(&self, id: &str) -> Option<JobRecord> {
+    pub fn dismiss(&self, id: &str) -> Stored<Option<JobRecord>> {
         let now = SystemTime::now();
         let mut applied = false;
-        let record = self.inner.store.update(id, &mut |j| {
+        let Some(record) = self.inner.store.update(id, &mut |j| {
             applied = j.dismiss(now, self.inner.limits.ttl).is_ok();
-        })?;
+        })?
+        else {
+            return Ok(None);
+        };
         let live = self.inner.live().get(id).cloned();
         match live {
             Some(control) => control.cancel(),
             // `end` removes the job from `live` before it looks for a tombstone, so one of the
             // two always sees the other's change.
             None => {
-                self.inner.store.remove(id);
+                self.inner.store.remove(id)?;
             }
         }
-        applied.then_some(record)
+        Ok(applied.then_some(record))
     }
 
     /// Jobs clients can see, newest first: a page and how many matched in all.
-    pub fn list(&self, filter: &JobFilter, offset: usize, limit: usize) -> (Vec<JobRecord>, usize) {
+    pub fn list(
+        &self,
+        filter: &JobFilter,
+        offset: usize,
+        limit: usize,
+    ) -> Stored<(Vec<JobRecord>, usize)> {
         let mut visible = filter.clone();
         if visible.states.is_empty() {
             visible.states = JobState::ALL
@@ -338,19 +397,19 @@ impl Jobs {
         } else {
             visible.states.retain(|s| *s != JobState::Dismissed);
             if visible.states.is_empty() {
-                return (Vec::new(), 0);
+                return Ok((Vec::new(), 0));
             }
         }
         self.inner.store.list(&visible, offset, limit)
     }
 
     /// Records held per state.
-    pub fn counts(&self) -> JobCounts {
+    pub fn counts(&self) -> Stored<JobCounts> {
         self.inner.store.counts()
     }
 
     /// Forgets records whose time to live has passed; returns how many.
-    pub fn purge_expired(&self) -> usize {
+    pub fn purge_expired(&self) -> Stored<usize> {
         self.inner.store.purge_expired(SystemTime::now())
     }
 
@@ -372,12 +431,14 @@ impl Jobs {
         for (id, control) in live {
             control.cancel();
             let failure = self.inner.failures.failure(Ending::ShutDown);
-            let mut f = Some(failure);
-            self.inner.store.update(&id, &mut |j| {
-                if let Some(f) = f.take() {
-                    failed += usize::from(j.fail(f, now, self.inner.limits.ttl).is_ok());
-                }
+            let mut ended = false;
+            let written = self.inner.store.update(&id, &mut |j| {
+                ended = j.fail(failure.clone(), now, self.inner.limits.ttl).is_ok();
             });
+            match written {
+                Ok(_) => failed += usize::from(ended),
+                Err(e) => tracing::warn!(job = %id, error = %e, "cannot fail a job at shutdown"),
+            }
         }
         failed
     }
@@ -386,6 +447,7 @@ impl Jobs {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::jobs::{Outcome, SwitchedStore};
     use bytes::Bytes;
 
     /// Failures as plain messages naming the ending.
@@ -403,7 +465,7 @@ mod tests {
 
     async fn finished(jobs: &Jobs, id: &str) -> JobRecord {
         for _ in 0..500 {
-            let j = jobs.record(id).unwrap();
+            let j = jobs.record(id).unwrap().unwrap();
             if j.state().is_finished() {
                 return j;
             }
@@ -465,7 +527,7 @@ mod tests {
                 ..
             }
         ));
-        assert_eq!(jobs.counts().total(), 1);
+        assert_eq!(jobs.counts().unwrap().total(), 1);
     }
 
     #[tokio::test]
@@ -480,12 +542,15 @@ mod tests {
         let done = jobs.submit("p", None, quick).unwrap();
         finished(&jobs, done.id()).await;
         assert!(jobs.held_bytes() >= 4096);
-        assert!(jobs.dismiss(done.id()).is_some());
+        assert!(jobs.dismiss(done.id()).unwrap().is_some());
         assert!(
-            jobs.record(done.id()).is_none(),
+            jobs.record(done.id()).unwrap().is_none(),
             "a dismissed finished job is kept"
         );
-        assert!(jobs.dismiss(done.id()).is_none(), "dismissed twice");
+        assert!(
+            jobs.dismiss(done.id()).unwrap().is_none(),
+            "dismissed twice"
+        );
         // A running job dismissed keeps a tombstone until its worker stops, then none.
         let (tx, rx) = std::sync::mpsc::channel::<()>();
         let slow: Work = Box::new(move |c: &Control| {
@@ -497,23 +562,102 @@ mod tests {
         });
         let running = jobs.submit("p", None, slow).unwrap();
         rx.recv_timeout(Duration::from_secs(10)).unwrap();
-        assert!(jobs.dismiss(running.id()).is_some());
-        let tombstone = jobs.record(running.id());
+        assert!(jobs.dismiss(running.id()).unwrap().is_some());
+        let tombstone = jobs.record(running.id()).unwrap();
         assert!(
             tombstone.is_none_or(|j| j.state() == JobState::Dismissed && j.cancel_requested()),
             "the running job's record is not a tombstone"
         );
         for _ in 0..500 {
-            if jobs.record(running.id()).is_none() {
+            if jobs.record(running.id()).unwrap().is_none() {
                 break;
             }
             tokio::time::sleep(Duration::from_millis(10)).await;
         }
         assert!(
-            jobs.record(running.id()).is_none(),
+            jobs.record(running.id()).unwrap().is_none(),
             "the tombstone outlived its worker"
         );
-        assert_eq!(jobs.counts().total(), 0);
+        assert_eq!(jobs.counts().unwrap().total(), 0);
         assert_eq!(jobs.held_bytes(), 0);
+    }
+
+    fn unplugged_jobs() -> (Arc<SwitchedStore>, Jobs) {
+        let store = Arc::new(SwitchedStore::new());
+        let jobs = Jobs::new(
+            crate::jobs::Store::of(store.clone()),
+            Pool::new(1, 4).unwrap(),
+            Arc::new(Named),
+            JobLimits::ttl(Duration::from_secs(60)),
+        );
+        (store, jobs)
+    }
+
+    /// The record as the store holds it, read past the switch.
+    fn held(store: &SwitchedStore, id: &str) -> JobRecord {
+        store.behind().get(id).unwrap().unwrap()
+    }
+
+    #[tokio::test]
+    async fn a_store_down_refuses_submissions_and_keeps_nothing() {
+        let (store, jobs) = unplugged_jobs();
+        store.set_off(true);
+        let quick: Work = Box::new(|_: &Control| Ok(Results::json(Bytes::from_static(b"{}"))));
+        let refused = jobs.submit("p", None, quick).unwrap_err();
+        assert_eq!(
+            refused,
+            SubmitRefused::StoreDown(StoreDown("switched off".into()))
+        );
+        assert!(jobs.inner.live().is_empty());
+        assert_eq!(store.behind().counts().unwrap().total(), 0);
+        assert!(jobs.status("any").is_err() && jobs.list(&JobFilter::default(), 0, 10).is_err());
+    }
+
+    #[tokio::test]
+    async fn an_ending_written_while_the_store_is_down_lands_when_it_is_back() {
+        let (store, jobs) = unplugged_jobs();
+        let (go_tx, go_rx) = std::sync::mpsc::channel::<()>();
+        let (ran_tx, ran_rx) = std::sync::mpsc::channel::<()>();
+        let work: Work = Box::new(move |_: &Control| {
+            let _ = ran_tx.send(());
+            go_rx.recv_timeout(Duration::from_secs(10)).ok();
+            Ok(Results::json(Bytes::from_static(b"{\"kept\":true}")))
+        });
+        let job = jobs.submit("p", None, work).unwrap();
+        ran_rx.recv_timeout(Duration::from_secs(10)).unwrap();
+        store.set_off(true);
+        go_tx.send(()).unwrap();
+        // The work has ended, the store refuses the ending: the record still says running.
+        tokio::time::sleep(Duration::from_millis(400)).await;
+        assert_eq!(held(&store, job.id()).state(), JobState::Running);
+        store.set_off(false);
+        let done = finished(&jobs, job.id()).await;
+        assert_eq!(done.state(), JobState::Successful);
+        match done.outcome() {
+            Some(Outcome::Results(r)) => assert_eq!(&r.body[..], b"{\"kept\":true}"),
+            other => panic!("no results: {other:?}"),
+        }
+    }
+
+    #[tokio::test]
+    async fn a_job_waits_for_the_store_to_start_it() {
+        let (store, jobs) = unplugged_jobs();
+        // Holds the one compute thread so the next job stays queued.
+        let (go_tx, go_rx) = std::sync::mpsc::channel::<()>();
+        let hold: Work = Box::new(move |_: &Control| {
+            go_rx.recv_timeout(Duration::from_secs(10)).ok();
+            Ok(Results::json(Bytes::from_static(b"{}")))
+        });
+        let first = jobs.submit("p", None, hold).unwrap();
+        let quick: Work = Box::new(|_: &Control| Ok(Results::json(Bytes::from_static(b"{}"))));
+        let queued = jobs.submit("p", None, quick).unwrap();
+        store.set_off(true);
+        go_tx.send(()).unwrap();
+        tokio::time::sleep(Duration::from_millis(400)).await;
+        assert_eq!(held(&store, queued.id()).state(), JobState::Accepted);
+        store.set_off(false);
+        for id in [first.id(), queued.id()] {
+            assert_eq!(finished(&jobs, id).await.state(), JobState::Successful);
+        }
     }
 }

@@ -11,7 +11,7 @@ use std::sync::Mutex;
 use std::time::SystemTime;
 
 use super::lifecycle::JobRecord;
-use super::{JobCounts, JobFilter, JobStore};
+use super::{JobCounts, JobFilter, JobStore, Stored};
 
 #[derive(Default)]
 pub struct MemoryStore {
@@ -51,8 +51,9 @@ impl MemoryStore {
     }
 }
 
+// The in-memory store never fails: every operation is `Ok`.
 impl JobStore for MemoryStore {
-    fn insert(&self, job: JobRecord) {
+    fn insert(&self, job: JobRecord) -> Stored<()> {
         let mut inner = self.lock();
         inner.forget(job.id());
         inner.counts.add(job.state());
@@ -61,9 +62,10 @@ impl JobStore for MemoryStore {
             .order
             .insert((Reverse(job.created()), job.id().to_string()));
         inner.jobs.insert(job.id().to_string(), job);
+        Ok(())
     }
 
-    fn get(&self, id: &str) -> Option<JobRecord> {
+    fn get(&self, id: &str) -> Stored<Option<JobRecord>> {
         let mut inner = self.lock();
         if inner
             .jobs
@@ -71,28 +73,39 @@ impl JobStore for MemoryStore {
             .is_some_and(|j| j.is_expired(SystemTime::now()))
         {
             inner.forget(id);
-            return None;
+            return Ok(None);
         }
-        inner.jobs.get(id).cloned()
+        Ok(inner.jobs.get(id).cloned())
     }
 
-    fn update(&self, id: &str, change: &mut dyn FnMut(&mut JobRecord)) -> Option<JobRecord> {
+    fn update(
+        &self,
+        id: &str,
+        change: &mut dyn FnMut(&mut JobRecord),
+    ) -> Stored<Option<JobRecord>> {
         let mut inner = self.lock();
-        let job = inner.jobs.get_mut(id)?;
+        let Some(job) = inner.jobs.get_mut(id) else {
+            return Ok(None);
+        };
         let (before, size) = (job.state(), job.heap_bytes() as u64);
         change(job);
         let (after, grown, copy) = (job.state(), job.heap_bytes() as u64, job.clone());
         inner.counts.remove(before);
         inner.counts.add(after);
         inner.bytes = inner.bytes.saturating_sub(size) + grown;
-        Some(copy)
+        Ok(Some(copy))
     }
 
-    fn remove(&self, id: &str) -> Option<JobRecord> {
-        self.lock().forget(id)
+    fn remove(&self, id: &str) -> Stored<Option<JobRecord>> {
+        Ok(self.lock().forget(id))
     }
 
-    fn list(&self, filter: &JobFilter, offset: usize, limit: usize) -> (Vec<JobRecord>, usize) {
+    fn list(
+        &self,
+        filter: &JobFilter,
+        offset: usize,
+        limit: usize,
+    ) -> Stored<(Vec<JobRecord>, usize)> {
         let now = SystemTime::now();
         let inner = self.lock();
         let mut page = Vec::with_capacity(limit.min(1024));
@@ -109,10 +122,10 @@ impl JobStore for MemoryStore {
             }
             matched += 1;
         }
-        (page, matched)
+        Ok((page, matched))
     }
 
-    fn purge_expired(&self, now: SystemTime) -> usize {
+    fn purge_expired(&self, now: SystemTime) -> Stored<usize> {
         let mut inner = self.lock();
         let gone: Vec<String> = inner
             .jobs
@@ -123,11 +136,11 @@ impl JobStore for MemoryStore {
         for id in &gone {
             inner.forget(id);
         }
-        gone.len()
+        Ok(gone.len())
     }
 
-    fn counts(&self) -> JobCounts {
-        self.lock().counts
+    fn counts(&self) -> Stored<JobCounts> {
+        Ok(self.lock().counts)
     }
 
     fn held_bytes(&self) -> u64 {
@@ -150,16 +163,20 @@ mod tests {
         let store = MemoryStore::new();
         let t = SystemTime::now();
         for i in 0..3 {
-            store.insert(JobRecord::accept(format!("j{i}"), "p".into(), None, t));
+            store
+                .insert(JobRecord::accept(format!("j{i}"), "p".into(), None, t))
+                .unwrap();
         }
-        store.update("j0", &mut |j| j.start(t).unwrap());
-        store.update("j1", &mut |j| j.dismiss(t, Duration::ZERO).unwrap());
-        let c = store.counts();
+        store.update("j0", &mut |j| j.start(t).unwrap()).unwrap();
+        store
+            .update("j1", &mut |j| j.dismiss(t, Duration::ZERO).unwrap())
+            .unwrap();
+        let c = store.counts().unwrap();
         assert_eq!((c.of(JobState::Accepted), c.of(JobState::Running)), (1, 1));
         assert_eq!(c.of(JobState::Dismissed), 1);
-        assert_eq!(store.purge_expired(t + Duration::from_secs(1)), 1);
-        assert_eq!(store.counts().of(JobState::Dismissed), 0);
-        assert_eq!(store.counts().total(), 2);
+        assert_eq!(store.purge_expired(t + Duration::from_secs(1)), Ok(1));
+        assert_eq!(store.counts().unwrap().of(JobState::Dismissed), 0);
+        assert_eq!(store.counts().unwrap().total(), 2);
     }
 
     #[test]
@@ -168,23 +185,25 @@ mod tests {
         let t = SystemTime::UNIX_EPOCH + Duration::from_secs(1_000);
         for i in 0..5u64 {
             let at = t + Duration::from_secs(i);
-            store.insert(JobRecord::accept(format!("j{i}"), "p".into(), None, at));
+            store
+                .insert(JobRecord::accept(format!("j{i}"), "p".into(), None, at))
+                .unwrap();
         }
         let held = store.held_bytes();
         let each = JobRecord::accept("j0".into(), "p".into(), None, t).heap_bytes() as u64;
         assert_eq!(held, 5 * each);
-        let (page, matched) = store.list(&JobFilter::default(), 1, 2);
+        let (page, matched) = store.list(&JobFilter::default(), 1, 2).unwrap();
         let ids: Vec<&str> = page.iter().map(|j| j.id()).collect();
         assert_eq!((ids, matched), (vec!["j3", "j2"], 5));
-        store.update("j4", &mut |j| j.start(t).unwrap());
+        store.update("j4", &mut |j| j.start(t).unwrap()).unwrap();
         let ran = JobFilter {
             states: vec![JobState::Running],
             ..JobFilter::default()
         };
-        let (page, matched) = store.list(&ran, 0, 10);
+        let (page, matched) = store.list(&ran, 0, 10).unwrap();
         assert_eq!((page[0].id(), matched), ("j4", 1));
-        store.remove("j4");
+        store.remove("j4").unwrap();
         assert_eq!(store.held_bytes(), 4 * each);
-        assert_eq!(store.list(&JobFilter::default(), 0, 10).1, 4);
+        assert_eq!(store.list(&JobFilter::default(), 0, 10).unwrap().1, 4);
     }
 }

@@ -10,13 +10,16 @@ mod lifecycle;
 mod manager;
 mod memory;
 mod runner;
+mod switched;
 
+use std::sync::Arc;
 use std::time::SystemTime;
 
 pub use lifecycle::{Failure, JobRecord, JobState, Outcome, Refused, Results};
 pub use manager::{Ending, Failures, JobLimits, Jobs, SubmitRefused, WorkError};
 pub use memory::MemoryStore;
 pub use runner::{CancelOnDrop, Finished, Pool, PoolStats, QueueFull};
+pub use switched::SwitchedStore;
 
 /// Which jobs a listing wants.
 #[derive(Clone, Debug, Default)]
@@ -61,26 +64,61 @@ impl JobCounts {
     }
 }
 
+/// The store could not be reached, or did not answer in time: nothing was changed that the
+/// caller can rely on. Occurs only with a store outside the process; the in-memory store never
+/// fails.
+#[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
+#[error("the job store is unavailable: {0}")]
+pub struct StoreDown(pub String);
+
+/// What a store operation gives back, or why it could not.
+pub type Stored<T> = Result<T, StoreDown>;
+
+/// Which store a service keeps its jobs in, as an opaque handle: the layers above choose it
+/// and hand it to `Jobs::new`, and never call it.
+#[derive(Clone)]
+pub struct Store(Arc<dyn JobStore>);
+
+impl Store {
+    /// The embedded default: in this process's memory, lost on restart.
+    pub fn memory() -> Store {
+        Store(Arc::new(MemoryStore::new()))
+    }
+    /// Any implementation of the trait (a test's, or one outside the process).
+    pub fn of(store: Arc<dyn JobStore>) -> Store {
+        Store(store)
+    }
+}
+
 /// A place to keep job records. Implementations must be cheap to call from async handlers: no
-/// IO that blocks for long, no computation. Records change only through `update`, whose closure
+/// IO that blocks for long (a remote store bounds every call by a short timeout and answers
+/// `StoreDown` past it), no computation. Records change only through `update`, whose closure
 /// the `jobs` module writes with the lifecycle's transitions.
 pub trait JobStore: Send + Sync + 'static {
-    fn insert(&self, job: JobRecord);
+    fn insert(&self, job: JobRecord) -> Stored<()>;
     /// A snapshot of the record, or `None` when it is unknown or expired.
-    fn get(&self, id: &str) -> Option<JobRecord>;
-    /// Applies `change` to the record and returns the changed copy; `None` when unknown.
-    fn update(&self, id: &str, change: &mut dyn FnMut(&mut JobRecord)) -> Option<JobRecord>;
+    fn get(&self, id: &str) -> Stored<Option<JobRecord>>;
+    /// Applies `change` to the record and returns the changed copy; `None` when unknown. The
+    /// closure may run more than once (a remote store retries when the record changed under
+    /// it), each time on a fresh copy.
+    fn update(&self, id: &str, change: &mut dyn FnMut(&mut JobRecord))
+        -> Stored<Option<JobRecord>>;
     /// Forgets a record at once (a submission the pool refused).
-    fn remove(&self, id: &str) -> Option<JobRecord>;
+    fn remove(&self, id: &str) -> Stored<Option<JobRecord>>;
     /// Records admitted by `filter`, newest first, `limit` of them from `offset`, and how many
     /// matched in all.
-    fn list(&self, filter: &JobFilter, offset: usize, limit: usize) -> (Vec<JobRecord>, usize);
+    fn list(
+        &self,
+        filter: &JobFilter,
+        offset: usize,
+        limit: usize,
+    ) -> Stored<(Vec<JobRecord>, usize)>;
     /// Forgets records whose time to live has passed; returns how many.
-    fn purge_expired(&self, now: SystemTime) -> usize;
+    fn purge_expired(&self, now: SystemTime) -> Stored<usize>;
     /// Records held per state.
-    fn counts(&self) -> JobCounts;
-    /// Bytes the records hold, results included (for admission).
+    fn counts(&self) -> Stored<JobCounts>;
+    /// Bytes the records hold in this process, results included (for admission).
     fn held_bytes(&self) -> u64;
-    /// Whether the store can take work (a remote store would check its connection).
+    /// Whether the store can take work (a remote store checks its connection).
     fn ready(&self) -> bool;
 }
