@@ -31,6 +31,10 @@ pub struct Config {
     /// Seconds a finished job (and its results) is kept.
     #[arg(long, env = "ZONETALLY_JOB_TTL", default_value_t = 3600.0)]
     pub job_ttl: f64,
+    /// Where jobs are kept: `memory` (this process, lost on restart) or `redis://host:port/db`
+    /// (shared by every replica using it).
+    #[arg(long, env = "ZONETALLY_JOB_STORE", default_value = "memory")]
+    pub job_store: String,
     /// Seconds an async job may run before it is cancelled and ends failed (0: no limit).
     #[arg(long, env = "ZONETALLY_JOB_TIMEOUT", default_value_t = 3600.0)]
     pub job_timeout: f64,
@@ -161,6 +165,7 @@ impl Default for Config {
             shared_pool: false,
             queue: 64,
             job_ttl: 3600.0,
+            job_store: "memory".into(),
             job_timeout: 3600.0,
             max_jobs: 10_000,
             max_job_bytes: None,

@@ -41,9 +41,10 @@ struct Inner {
 }
 
 impl AppState {
-    /// The embedded set-up: an in-memory job store.
+    /// The service as its configuration says (the embedded default: an in-memory job store).
     pub fn new(config: Config) -> Result<AppState, String> {
-        AppState::with_job_store(config, crate::jobs::Store::memory())
+        let store = crate::jobs::Store::open(&config.job_store)?;
+        AppState::with_job_store(config, store)
     }
 
     /// The service keeping its jobs in `store`.

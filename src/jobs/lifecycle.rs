@@ -296,6 +296,103 @@ impl JobRecord {
             + self.owner.as_ref().map_or(0, String::len)
             + outcome
     }
+
+    /// The record as named fields of bytes, for a store outside the process (a Redis hash):
+    /// times in microseconds since the Unix epoch, absent values left out. The id is the key's.
+    pub(super) fn to_fields(&self) -> Vec<(&'static str, Vec<u8>)> {
+        let mut f: Vec<(&'static str, Vec<u8>)> = vec![
+            ("process", self.process.clone().into_bytes()),
+            ("state", self.state.as_str().into()),
+            ("message", self.message.clone().into_bytes()),
+            ("progress", self.progress.to_string().into_bytes()),
+            ("created", micros(self.created).to_string().into_bytes()),
+            ("updated", micros(self.updated).to_string().into_bytes()),
+            (
+                "cancel",
+                if self.cancel_requested { "1" } else { "0" }.into(),
+            ),
+        ];
+        if let Some(o) = &self.owner {
+            f.push(("owner", o.clone().into_bytes()));
+        }
+        for (name, at) in [
+            ("started", self.started),
+            ("finished", self.finished),
+            ("expires", self.expires),
+        ] {
+            if let Some(at) = at {
+                f.push((name, micros(at).to_string().into_bytes()));
+            }
+        }
+        match &self.outcome {
+            Some(Outcome::Results(r)) => {
+                f.push(("outcome", "results".into()));
+                f.push(("media_type", r.media_type.clone().into_bytes()));
+                f.push(("body", r.body.to_vec()));
+            }
+            Some(Outcome::Failure { status, body }) => {
+                f.push(("outcome", "failure".into()));
+                f.push(("status", status.to_string().into_bytes()));
+                f.push(("body", body.to_vec()));
+            }
+            None => {}
+        }
+        f
+    }
+
+    /// The record back from `to_fields`; `None` when a field is missing or malformed.
+    pub(super) fn from_fields(
+        id: &str,
+        fields: &std::collections::HashMap<String, Vec<u8>>,
+    ) -> Option<JobRecord> {
+        let text = |name: &str| -> Option<String> {
+            fields
+                .get(name)
+                .and_then(|b| String::from_utf8(b.clone()).ok())
+        };
+        let time = |name: &str| -> Option<Option<SystemTime>> {
+            match text(name) {
+                None => Some(None),
+                Some(t) => Some(Some(
+                    SystemTime::UNIX_EPOCH + Duration::from_micros(t.parse().ok()?),
+                )),
+            }
+        };
+        let required = |name: &str| time(name).flatten();
+        let outcome = match text("outcome").as_deref() {
+            None => None,
+            Some("results") => Some(Outcome::Results(Results {
+                body: Bytes::from(fields.get("body")?.clone()),
+                media_type: text("media_type")?,
+            })),
+            Some("failure") => Some(Outcome::Failure {
+                status: text("status")?.parse().ok()?,
+                body: Bytes::from(fields.get("body")?.clone()),
+            }),
+            Some(_) => return None,
+        };
+        Some(JobRecord {
+            id: id.to_string(),
+            process: text("process")?,
+            owner: text("owner"),
+            state: JobState::parse(&text("state")?)?,
+            message: text("message")?,
+            progress: text("progress")?.parse().ok()?,
+            created: required("created")?,
+            started: time("started")?,
+            finished: time("finished")?,
+            updated: required("updated")?,
+            expires: time("expires")?,
+            cancel_requested: text("cancel")? == "1",
+            outcome,
+        })
+    }
+}
+
+/// Microseconds since the Unix epoch (0 for a time before it).
+pub(super) fn micros(at: SystemTime) -> u64 {
+    at.duration_since(SystemTime::UNIX_EPOCH)
+        .map_or(0, |d| d.as_micros() as u64)
 }
 
 #[cfg(test)]

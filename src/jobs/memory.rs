@@ -11,7 +11,7 @@ use std::sync::Mutex;
 use std::time::SystemTime;
 
 use super::lifecycle::JobRecord;
-use super::{JobCounts, JobFilter, JobStore, Stored};
+use super::{JobCounts, JobFilter, JobStore, Paging, Stored};
 
 #[derive(Default)]
 pub struct MemoryStore {
@@ -106,23 +106,14 @@ impl JobStore for MemoryStore {
         offset: usize,
         limit: usize,
     ) -> Stored<(Vec<JobRecord>, usize)> {
-        let now = SystemTime::now();
         let inner = self.lock();
-        let mut page = Vec::with_capacity(limit.min(1024));
-        let mut matched = 0;
+        let mut paging = Paging::new(filter, offset, limit);
         for (_, id) in &inner.order {
-            let Some(job) = inner.jobs.get(id) else {
-                continue;
-            };
-            if job.is_expired(now) || !filter.admits(job) {
-                continue;
+            if let Some(job) = inner.jobs.get(id) {
+                paging.offer(job);
             }
-            if matched >= offset && page.len() < limit {
-                page.push(job.clone());
-            }
-            matched += 1;
         }
-        Ok((page, matched))
+        Ok(paging.done())
     }
 
     fn purge_expired(&self, now: SystemTime) -> Stored<usize> {

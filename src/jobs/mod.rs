@@ -9,6 +9,7 @@
 mod lifecycle;
 mod manager;
 mod memory;
+mod redis;
 mod runner;
 mod switched;
 
@@ -18,6 +19,7 @@ use std::time::SystemTime;
 pub use lifecycle::{Failure, JobRecord, JobState, Outcome, Refused, Results};
 pub use manager::{Ending, Failures, JobLimits, Jobs, SubmitRefused, WorkError};
 pub use memory::MemoryStore;
+pub use redis::RedisStore;
 pub use runner::{CancelOnDrop, Finished, Pool, PoolStats, QueueFull};
 pub use switched::SwitchedStore;
 
@@ -38,6 +40,42 @@ impl JobFilter {
     }
 }
 
+/// A listing being collected: records offered newest first, those admitted counted, and those
+/// from `offset` kept up to `limit`.
+struct Paging<'a> {
+    filter: &'a JobFilter,
+    now: SystemTime,
+    offset: usize,
+    limit: usize,
+    page: Vec<JobRecord>,
+    matched: usize,
+}
+
+impl<'a> Paging<'a> {
+    fn new(filter: &'a JobFilter, offset: usize, limit: usize) -> Paging<'a> {
+        Paging {
+            filter,
+            now: SystemTime::now(),
+            offset,
+            limit,
+            page: Vec::with_capacity(limit.min(1024)),
+            matched: 0,
+        }
+    }
+    fn offer(&mut self, job: &JobRecord) {
+        if job.is_expired(self.now) || !self.filter.admits(job) {
+            return;
+        }
+        if self.matched >= self.offset && self.page.len() < self.limit {
+            self.page.push(job.clone());
+        }
+        self.matched += 1;
+    }
+    fn done(self) -> (Vec<JobRecord>, usize) {
+        (self.page, self.matched)
+    }
+}
+
 /// How many jobs a store holds in each state.
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
 pub struct JobCounts([usize; 5]);
@@ -55,6 +93,9 @@ impl JobCounts {
     fn remove(&mut self, state: JobState) {
         let n = &mut self.0[Self::slot(state)];
         *n = n.saturating_sub(1);
+    }
+    fn set(&mut self, state: JobState, n: usize) {
+        self.0[Self::slot(state)] = n;
     }
     pub fn of(&self, state: JobState) -> usize {
         self.0[Self::slot(state)]
@@ -87,6 +128,19 @@ impl Store {
     /// Any implementation of the trait (a test's, or one outside the process).
     pub fn of(store: Arc<dyn JobStore>) -> Store {
         Store(store)
+    }
+    /// The store `--job-store` names: `memory`, or `redis://host:port/db` (keys under
+    /// `zonetally:`).
+    pub fn open(spec: &str) -> Result<Store, String> {
+        match spec {
+            "memory" => Ok(Store::memory()),
+            url if url.starts_with("redis://") || url.starts_with("rediss://") => {
+                Ok(Store(Arc::new(RedisStore::open(url, "zonetally")?)))
+            }
+            other => Err(format!(
+                "--job-store `{other}` is neither `memory` nor a `redis://host:port/db` address"
+            )),
+        }
     }
 }
 
