@@ -145,11 +145,15 @@ impl RedisStore {
         let key = self.job_key(id);
         redis::transaction(conn, &[&key], |conn, pipe| {
             let Some(job) = self.read(conn, id)? else {
-                // Gone already (or expired by Redis): drop what still points at it.
-                let _: () = redis::pipe()
-                    .zrem(self.key("jobs"), id)
-                    .zrem(self.key("expiring"), id)
-                    .query(conn)?;
+                // Gone already (expired by Redis, its state unknown): drop what still points
+                // at it.
+                let mut indexes = redis::pipe();
+                indexes.zrem(self.key("jobs"), id).ignore();
+                indexes.zrem(self.key("expiring"), id).ignore();
+                for state in JobState::ALL {
+                    indexes.srem(self.state_key(state), id).ignore();
+                }
+                let _: () = indexes.query(conn)?;
                 return Ok(Some(None));
             };
             self.forget(pipe, &job);
